@@ -52,7 +52,8 @@ extern "C" {
     X(EJOURNAL, 50, "journal damaged")                                                     \
     X(ECONFIG, 51, "invalid configuration")                                                \
     X(ENPY, 60, "bad .npy file")                                                           \
-    X(ELOG, 61, "bad transition log")
+    X(ELOG, 61, "bad transition log")                                                      \
+    X(EPROTOCOL, 62, "unsupported wire protocol version")
 
 enum {
 #define VEER__ERR_ENUM(name, num, text) VEER_##name = -(num),
