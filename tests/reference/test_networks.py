@@ -1,0 +1,204 @@
+"""libveer's networks and policies against the independent NumPy forward pass.
+
+Reference: veer.reference (clients/python/veer/reference.py), written from the formulas in
+proto/veer_bundle.proto and include/veer/runtime.h, computing in float64 from the float32
+weights in the bundle. libveer computes in float32 on OpenBLAS. Agreement is required within
+1e-5 normwise relative error per output row, max|c - r| / max|r| (the normwise relative error
+of Higham, "Accuracy and Stability of Numerical Algorithms", 2nd ed., section 1.2); float32's
+unit roundoff is 6e-8, so a few hundred roundings in a dot product stay well below 1e-5.
+
+Bundles have random weights (veer.synth) and cover: discrete and continuous actions, concat and
+bilinear merges, embedding inputs (discrete action as an index; two integer state features
+looked up jointly), B reading a feature subset, layer norm, rescale-to-norm, the SMALL and
+STANDARD benchmark sizes.
+"""
+import numpy as np
+import pytest
+
+import veerlib
+from veer import bundle as vb
+from veer import synth
+
+REL = 1e-5
+
+CASES = {
+    "discrete_concat": dict(layout=dict(kind="discrete", state_dim=8, z_dim=16, action_count=5)),
+    "discrete_bilinear": dict(layout=dict(kind="discrete", state_dim=8, z_dim=16, action_count=4,
+                                          merge="bilinear", bilinear_k=8, bilinear_bias=True)),
+    "discrete_bilinear_nobias_embed_action": dict(layout=dict(
+        kind="discrete", state_dim=6, z_dim=12, action_count=7, merge="bilinear", bilinear_k=6,
+        bilinear_bias=False, embed_action=True)),
+    "discrete_embed_action_concat": dict(layout=dict(kind="discrete", state_dim=8, z_dim=16,
+                                                     action_count=6, embed_action=True)),
+    "discrete_embed_state_subset": dict(
+        layout=dict(kind="discrete", state_dim=9, z_dim=16, action_count=4,
+                    b_features=[0, 2, 5, 7, 8], embed_state=[7, 8], state_counts=[4, 5]),
+        build=dict(embed_state=[7, 8], state_counts=[4, 5])),
+    "discrete_layer_norm_no_rescale": dict(layout=dict(kind="discrete", state_dim=10, z_dim=20,
+                                                       action_count=3, layer_norm=True,
+                                                       rescale_b=False)),
+    "continuous_normalized": dict(layout=dict(kind="continuous", state_dim=8, z_dim=16,
+                                              action_dim=3, actor_normalized=True)),
+    "continuous_raw_layer_norm_subset": dict(layout=dict(
+        kind="continuous", state_dim=10, z_dim=16, action_dim=2, actor_normalized=False,
+        layer_norm=True, b_features=[1, 3, 4])),
+    "continuous_bilinear": dict(layout=dict(kind="continuous", state_dim=7, z_dim=10,
+                                            action_dim=4, merge="bilinear", bilinear_k=5)),
+    "small": dict(preset="small"),
+    "standard": dict(preset="standard"),
+}
+
+
+def make_case(name):
+    case = CASES[name]
+    if "preset" in case:
+        layout = synth.preset_layout(case["preset"])
+    else:
+        layout = synth.make_layout(model_version=name, **case["layout"])
+    m, _, states = synth.build_random(layout, seed=hash(name) % 1000, n_states=600,
+                                      **case.get("build", {}))
+    data = vb.pack_bundle(m)
+    return vb.read_bundle(data), data, states
+
+
+@pytest.fixture(scope="module", params=sorted(CASES))
+def case(request, lib):
+    bundle, data, states = make_case(request.param)
+    rt = veerlib.Runtime(lib, data, max_batch=16)
+    yield request.param, bundle, rt, states
+    rt.close()
+
+
+def rel_err(c, r):
+    """Normwise relative error per row (Higham 1.2), the worst row."""
+    c = np.asarray(c, np.float64).reshape(len(r), -1)
+    r = np.asarray(r, np.float64).reshape(len(r), -1)
+    scale = np.maximum(np.abs(r).max(axis=1), 1e-30)
+    return float((np.abs(c - r).max(axis=1) / scale).max())
+
+
+def sample_states(bundle, states, rng, n=40):
+    """Training states plus a few stretched ones (to reach saturation and clipping)."""
+    pick = states[rng.choice(len(states), n, replace=False)].astype(np.float64)
+    far = pick[: n // 4] * 4.0
+    out = np.concatenate([pick, far])
+    # Features read through an embedding must stay valid indices.
+    for br in bundle.model.backward.branches:
+        for L in br.layers:
+            if L.kind == vb.pb.LAYER_EMBEDDING:
+                for f in br.inputs[0].features:
+                    out[:, f] = states[rng.choice(len(states), len(out)), f]
+    return out.astype(np.float32).astype(np.float64)
+
+
+def task_vectors(bundle, rt, states, rng, n):
+    """Task vectors of the kind the service uses: B of a state rescaled to sqrt(d), and random
+    directions of the same norm."""
+    d = bundle.model.z_dim
+    z = rng.normal(size=(n, d))
+    z[: n // 2] = bundle.B(states[: n // 2])
+    z *= np.sqrt(d) / np.linalg.norm(z, axis=1, keepdims=True)
+    return z.astype(np.float32).astype(np.float64)
+
+
+def random_actions(bundle, rng, n):
+    a = bundle.action
+    if a.kind == "discrete":
+        return rng.integers(0, a.count, (n, 1)).astype(np.float64)
+    return rng.uniform(a.low, a.high, (n, a.dim)).astype(np.float32).astype(np.float64)
+
+
+def test_backward(case):
+    name, bundle, rt, states = case
+    rng = np.random.default_rng(1)
+    s = sample_states(bundle, states, rng)
+    assert rel_err(rt.B(s), bundle.B(s)) < REL
+
+
+def test_forward_and_q(case):
+    name, bundle, rt, states = case
+    rng = np.random.default_rng(2)
+    s = sample_states(bundle, states, rng)
+    z = task_vectors(bundle, rt, s, rng, len(s))
+    a = random_actions(bundle, rng, len(s))
+    f_c = rt.F(s, a, z)
+    f_r = bundle.F(s, a, z)
+    assert rel_err(f_c, f_r) < REL
+    # Q = F . z, from libveer's F against the reference's Q.
+    q_c = np.einsum("nd,nd->n", f_c.astype(np.float64), z)
+    q_r = bundle.Q(s, a, z)
+    assert np.max(np.abs(q_c - q_r) / (np.abs(f_r).max(axis=1) * np.linalg.norm(z, axis=1))) < REL
+
+
+def test_actor(case):
+    name, bundle, rt, states = case
+    if bundle.action.kind != "continuous":
+        pytest.skip("discrete bundles carry no actor")
+    rng = np.random.default_rng(3)
+    s = sample_states(bundle, states, rng)
+    z = task_vectors(bundle, rt, s, rng, len(s))
+    assert rel_err(rt.actor(s, z), bundle.actor(s, z)) < REL
+
+
+def test_policy(case):
+    """veer_act_batch (one z for all rows) and veer_act against the reference policy:
+    continuous = clip(map(actor)), discrete = argmax_a F(s, a, z) . z, value = Q at the action."""
+    name, bundle, rt, states = case
+    rng = np.random.default_rng(4)
+    s = sample_states(bundle, states, rng)
+    checked_clip = 0
+    for z in task_vectors(bundle, rt, s, rng, 4):
+        zs = np.repeat(z[None], len(s), axis=0)
+        a_c, v_c, fl = rt.act_batch(s, z)
+        assert not np.any(fl & (veerlib.ACT_FALLBACK | veerlib.ACT_NONFINITE))
+        if bundle.action.kind == "continuous":
+            a_r, v_r, clipped = bundle.policy(s, zs)
+            span = bundle.action.high - bundle.action.low
+            assert np.max(np.abs(a_c - a_r) / span) < REL
+            # Every action within the bounds, exactly, in float32.
+            assert np.all(a_c >= bundle.action.low) and np.all(a_c <= bundle.action.high)
+            assert np.array_equal((fl & veerlib.ACT_CLIPPED) != 0, clipped)
+            checked_clip += int(clipped.sum())
+            q_scale = np.abs(bundle.F(s, a_r, zs)).max(axis=1) * np.linalg.norm(z)
+            assert np.max(np.abs(v_c - v_r) / q_scale) < REL
+        else:
+            idx_r, v_r, q_all = bundle.policy(s, zs)
+            idx_c = np.rint(a_c[:, 0]).astype(int)
+            q_scale = np.abs(q_all).max(axis=1)
+            # The argmax must agree, except between actions whose Q differ by less than the
+            # tolerance (then either is a correct argmax in float32).
+            gap = q_all[np.arange(len(s)), idx_r] - q_all[np.arange(len(s)), idx_c]
+            assert np.all(gap <= REL * q_scale), f"argmax differs: {np.nonzero(idx_c != idx_r)}"
+            assert np.mean(idx_c == idx_r) > 0.9
+            assert np.max(np.abs(v_c - q_all[np.arange(len(s)), idx_c]) / q_scale) < REL
+        # The single-state call gives the batch's answer.
+        for i in (0, len(s) - 1):
+            rc, a1, v1, fl1 = rt.act(s[i], z)
+            assert rc == 0 and np.allclose(a1, a_c[i], rtol=REL, atol=0) and fl1 == fl[i]
+            assert abs(v1 - v_c[i]) <= REL * max(abs(v_c[i]), 1e-6) * 10
+    if bundle.action.kind == "continuous":
+        assert checked_clip > 0, "the test states never reached the bounds: clipping unchecked"
+
+
+def test_info_matches_file(case):
+    """What libveer reports about the bundle is what the file holds."""
+    name, bundle, rt, states = case
+    info, m = rt.info, bundle.model
+    assert (info.state_dim, info.z_dim) == (m.state_dim, m.z_dim)
+    assert [info.feature_names[i].decode() for i in range(m.state_dim)] == list(m.feature_names)
+    assert [info.b_features[i] for i in range(info.b_feature_count)] == bundle.b_features()
+    assert bytes(info.digest[:32]) == bundle.digest
+    assert info.reference_count == m.reference.count
+    ref_b = np.ctypeslib.as_array(info.reference_b, (m.reference.count * m.z_dim,))
+    assert np.array_equal(ref_b, np.asarray(m.reference.b, np.float32))
+    assert info.has_stats == 1
+    mean = np.ctypeslib.as_array(info.state_mean, (m.state_dim,))
+    assert np.array_equal(mean, np.asarray(m.stats.mean, np.float32))
+    # The precision matrix libveer computes at load is the inverse of cov + ridge I
+    # (checked against numpy.linalg.inv).
+    cov = bundle.arrays["stats.cov"].astype(np.float64) + m.stats.cov_ridge * np.eye(m.state_dim)
+    prec = np.ctypeslib.as_array(info.state_precision, (m.state_dim, m.state_dim))
+    p_ref = np.linalg.inv(cov)
+    assert np.max(np.abs(prec - p_ref)) / np.abs(p_ref).max() < 1e-4
+    if m.task_defaults.rescale_norm == 0:
+        assert info.rescale_norm == pytest.approx(np.sqrt(m.z_dim), rel=1e-6)
