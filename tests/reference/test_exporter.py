@@ -27,7 +27,7 @@ from veer import synth
 def continuous():
     layout = synth.make_layout(kind="continuous", state_dim=6, z_dim=8, action_dim=2,
                                b_features=[0, 3, 4], hidden=[16, 16])
-    m, weights, states = synth.build_random(layout, seed=7, n_states=500, reference_count=64)
+    m, weights, states = synth.build_random(layout, rng_key=7, n_states=500, reference_count=64)
     return layout, weights, states, vb.read_bundle(vb.pack_bundle(m))
 
 

@@ -276,6 +276,7 @@ def drift_statistics(states: np.ndarray, bins: int, cov_ridge: Optional[float] =
         raise ValueError("bins: at least 2 quantile bins are needed")
     mean = x.mean(axis=0)
     cov = np.cov(x, rowvar=False, ddof=1).reshape(dim, dim)
+    cov = (cov + cov.T) / 2  # exactly symmetric after rounding, as the loader requires
     if cov_ridge is None:
         cov_ridge = 1e-6 * max(float(np.trace(cov)) / dim, 1e-12)
     probs = np.arange(1, bins) / bins
@@ -298,7 +299,7 @@ def weights_digest(weights: Mapping) -> str:
 
 
 def build_model(layout: dict, weights: Mapping, training_states, *, reference_count: int = 512,
-                bins: int = 16, cov_ridge: Optional[float] = None, seed: int = 0,
+                bins: int = 16, cov_ridge: Optional[float] = None, rng_key: int = 0,
                 created: Optional[str] = None, with_stats: bool = True):
     """The Model message for `layout` and `weights`, with statistics, reference set and
     Cov(B) computed from `training_states` (n x state_dim). Raises ValueError naming the
@@ -366,6 +367,8 @@ def build_model(layout: dict, weights: Mapping, training_states, *, reference_co
         if net not in nets:
             raise ValueError(f"networks.{net}: missing")
     m.actor_normalized = bool(layout.get("actor_normalized", False))
+    if m.actor_normalized and action["kind"] != "continuous":
+        raise ValueError("actor_normalized: only continuous bundles carry an actor")
 
     states = np.asarray(training_states, dtype=np.float64)
     if states.ndim != 2 or states.shape[1] != state_dim:
@@ -392,7 +395,7 @@ def build_model(layout: dict, weights: Mapping, training_states, *, reference_co
         m.stats.mahalanobis_p999 = st["mahalanobis_p999"]
 
     if reference_count > 0:
-        rng = np.random.default_rng(seed)
+        rng = np.random.default_rng(rng_key)
         count = min(reference_count, states.shape[0])
         pick = np.sort(rng.choice(states.shape[0], size=count, replace=False))
         m.reference.count = count
@@ -400,7 +403,8 @@ def build_model(layout: dict, weights: Mapping, training_states, *, reference_co
         m.reference.b.extend(b_all[pick].astype(np.float32).ravel().tolist())
 
     # Cov(B) as runtime.h defines it: the second moment E[B B^T] over the training sample.
-    m.cov_b.extend((b_all.T @ b_all / b_all.shape[0]).astype(np.float32).ravel().tolist())
+    second = b_all.T @ b_all / b_all.shape[0]
+    m.cov_b.extend(((second + second.T) / 2).astype(np.float32).ravel().tolist())
 
     prov = layout.get("provenance", {})
     m.provenance.producer = str(prov.get("producer", PRODUCER))
@@ -408,7 +412,7 @@ def build_model(layout: dict, weights: Mapping, training_states, *, reference_co
         "%Y-%m-%dT%H:%M:%SZ")
     m.provenance.source_digest = str(prov.get("source_digest") or weights_digest(weights))
     m.provenance.settings = str(prov.get("settings") or json.dumps(
-        {"reference_count": reference_count, "bins": bins, "cov_ridge": cov_ridge, "seed": seed,
+        {"reference_count": reference_count, "bins": bins, "cov_ridge": cov_ridge, "rng_key": rng_key,
          "training_states": int(states.shape[0])}, sort_keys=True))
     m.provenance.notes = str(prov.get("notes", ""))
     return m
@@ -686,13 +690,13 @@ def main(argv=None) -> int:
     e.add_argument("--reference-count", type=int, default=512)
     e.add_argument("--bins", type=int, default=16)
     e.add_argument("--cov-ridge", type=float, default=None)
-    e.add_argument("--seed", type=int, default=0)
+    e.add_argument("--rng-key", type=int, default=0)
     s = sub.add_parser("show", help="describe a bundle")
     s.add_argument("bundle")
     s.add_argument("--json", action="store_true")
     r = sub.add_parser("random", help="write a bundle with random weights (for tests, benchmarks)")
     r.add_argument("--preset", required=True, help="small, standard, continuous")
-    r.add_argument("--seed", type=int, default=0)
+    r.add_argument("--rng-key", type=int, default=0)
     r.add_argument("-o", "--output", required=True)
     args = p.parse_args(argv)
 
@@ -708,7 +712,7 @@ def main(argv=None) -> int:
                                                                       digest_size=32).hexdigest())
             m = export_bundle(args.output, layout, weights, _load_states(args.states),
                               reference_count=args.reference_count, bins=args.bins,
-                              cov_ridge=args.cov_ridge, seed=args.seed)
+                              cov_ridge=args.cov_ridge, rng_key=args.rng_key)
             print(f"wrote {args.output}: state_dim {m.state_dim}, z_dim {m.z_dim}, "
                   f"{m.reference.count} reference states")
         elif args.cmd == "show":
@@ -720,7 +724,7 @@ def main(argv=None) -> int:
                 _print_summary(s, args.bundle)
         else:
             from . import synth
-            m = synth.write_preset(args.output, args.preset, seed=args.seed)
+            m = synth.write_preset(args.output, args.preset, rng_key=args.rng_key)
             print(f"wrote {args.output}: preset {args.preset}, z_dim {m.z_dim}")
     except BundleFormatError as err:
         print(f"veer.bundle: {err.code} in {err.field}: {err.message}", file=sys.stderr)

@@ -119,7 +119,8 @@ def make_layout(*, kind: str = "discrete", state_dim: int = 8, z_dim: int = 16,
                          "merge": "concat", "head": []}
     return {"model_version": model_version, "feature_names": names, "z_dim": z_dim,
             "discount": 0.98, "decision_step_s": 0.01, "action": action,
-            "fallback_action": fallback, "actor_normalized": actor_normalized,
+            "fallback_action": fallback,
+            "actor_normalized": actor_normalized and kind == "continuous",
             "task_defaults": {"rescale": True, "rescale_norm": 0.0, "center_rewards": False,
                               "ridge": 1e-3},
             "networks": nets,
@@ -208,18 +209,18 @@ def preset_layout(name: str) -> dict:
     return make_layout(model_version=f"{name}-random", **PRESETS[name])
 
 
-def build_random(layout: dict, *, seed: int = 0, n_states: int = 2000, reference_count: int = 256,
+def build_random(layout: dict, *, rng_key: int = 0, n_states: int = 2000, reference_count: int = 256,
                  embed_state=None, state_counts=None, **kw):
     """(Model, weights, training states) for a layout with random weights."""
-    rng = np.random.default_rng(seed)
+    rng = np.random.default_rng(rng_key)
     weights = random_weights(layout, rng)
     states = random_states(layout, n_states, rng, embed_state, state_counts)
-    m = vb.build_model(layout, weights, states, reference_count=reference_count, seed=seed,
+    m = vb.build_model(layout, weights, states, reference_count=reference_count, rng_key=rng_key,
                        created="2026-01-01T00:00:00Z", **kw)
     return m, weights, states
 
 
-def write_preset(path: str, name: str, seed: int = 0):
-    m, _, _ = build_random(preset_layout(name), seed=seed)
+def write_preset(path: str, name: str, rng_key: int = 0):
+    m, _, _ = build_random(preset_layout(name), rng_key=rng_key)
     vb.write_file_atomic(path, vb.pack_bundle(m))
     return m

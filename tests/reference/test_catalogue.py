@@ -1,0 +1,57 @@
+"""The catalogue of broken bundles (broken.py): libveer must refuse each one with the code
+listed for it (include/veer/error.h) and name the field, through both veer_bundle_open_mem and
+veer_bundle_open. The two good bundles the catalogue is made from must load: without that
+control, a loader that refused everything would pass.
+"""
+import ctypes as C
+
+import pytest
+
+import broken
+import veerlib
+from veer import bundle as vb
+
+CATALOGUE = broken.catalogue()
+
+
+def open_mem(lib, data):
+    h, err = C.c_void_p(), veerlib.VeerError()
+    rc = lib.veer_bundle_open_mem(data, len(data), C.byref(h), C.byref(err))
+    if h:
+        lib.veer_bundle_close(h)
+    return rc, h, err
+
+
+def test_catalogue_is_large_and_varied():
+    assert len(CATALOGUE) >= 12
+    assert len({b.code for b in CATALOGUE}) >= 12
+
+
+def test_good_bundles_load(lib):
+    for m in broken.good_models():
+        rc, _, err = open_mem(lib, vb.pack_bundle(m))
+        assert rc == 0, f"{err.field.decode()}: {err.message.decode()}"
+
+
+@pytest.mark.parametrize("entry", CATALOGUE, ids=[b.name for b in CATALOGUE])
+def test_refused_with_code_and_field(lib, entry, tmp_path):
+    rc, h, err = open_mem(lib, entry.data)
+    got = lib.veer_errname(rc).decode() if rc else "0"
+    assert rc == veerlib.CODES[entry.code], (
+        f"{entry.name}: expected VEER_{entry.code}, got {got} "
+        f"({err.field.decode()}: {err.message.decode()})")
+    assert err.code == rc
+    assert err.field.decode().startswith(entry.field), err.field.decode()
+    assert err.message.decode().strip()
+    # The same through a file.
+    path = tmp_path / f"{entry.name}.veer"
+    path.write_bytes(entry.data)
+    h2, err2 = C.c_void_p(), veerlib.VeerError()
+    rc2 = lib.veer_bundle_open(str(path).encode(), C.byref(h2), C.byref(err2))
+    assert rc2 == rc and not h2 and err2.field == err.field
+
+
+def test_missing_file(lib, tmp_path):
+    h, err = C.c_void_p(), veerlib.VeerError()
+    rc = lib.veer_bundle_open(str(tmp_path / "absent.veer").encode(), C.byref(h), C.byref(err))
+    assert rc == veerlib.CODES["EIO"] and not h and err.field.decode()
