@@ -633,9 +633,10 @@ def _print_summary(s: dict, path: str) -> None:
     a = s["action"]
     if a["kind"] == "continuous":
         print(f"  action: continuous, {a['dim']} dims")
-        for i in range(a["dim"]):
-            nm = a["names"][i] if i < len(a["names"]) else f"a{i}"
-            print(f"    {nm:<20} [{a['low'][i]:.4g}, {a['high'][i]:.4g}]  "
+        names = [a["names"][i] if i < len(a["names"]) else f"a{i}" for i in range(a["dim"])]
+        width = max(len(n) for n in names)
+        for i, nm in enumerate(names):
+            print(f"    {nm:<{width}}  [{a['low'][i]:.4g}, {a['high'][i]:.4g}]  "
                   f"fallback {s['fallback_action'][i]:.4g}")
     else:
         print(f"  action: discrete, {a['count']} actions, fallback {int(s['fallback_action'][0])}")
