@@ -1,0 +1,257 @@
+/* Parsing veerd's flags and VEER_* variables from one table of option descriptors.
+ *
+ * The key choice is the table: each option names its flag, its variable, its kind, its range
+ * and its help line once, and the parser, the range checks, --help and the start-up dump all
+ * walk it. Unknown flags, values out of range and missing required settings all come back as
+ * VEER_ECONFIG with the flag in err->field, and veerd exits 2 on them. getopt_long is not used
+ * because it prints its own messages and cannot report which environment variable was bad. */
+#include "service/config.h"
+
+#include <errno.h>
+#include <inttypes.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include "base/base.h"
+
+typedef enum { OPT_STR, OPT_U32, OPT_BOOL } opt_kind;
+
+typedef struct opt_desc {
+    const char *flag;     /* "--act" */
+    const char *env;      /* "VEER_ACT" */
+    opt_kind kind;
+    size_t offset;        /* into veer__config */
+    const char *fallback; /* default as text; NULL: none (empty string or required) */
+    uint32_t min, max;    /* OPT_U32 range */
+    int required;
+    const char *help;
+} opt_desc;
+
+#define OFF(f) offsetof(veer__config, f)
+
+static const opt_desc OPTIONS[] = {
+    {"--bundle", "VEER_BUNDLE", OPT_STR, OFF(bundle_path), NULL, 0, 0, 1,
+     "Model bundle file to load and serve (required)."},
+    {"--state-dir", "VEER_STATE_DIR", OPT_STR, OFF(state_dir), "veerd-state", 0, 0, 0,
+     "Directory for the journal of tasks and switches; created (mode 0700) when missing."},
+    {"--act", "VEER_ACT", OPT_STR, OFF(act_endpoint), "tcp://127.0.0.1:7710", 0, 0, 0,
+     "Act endpoint (ZeroMQ ROUTER): controllers connect with DEALER and ask for actions."},
+    {"--admin", "VEER_ADMIN", OPT_STR, OFF(admin_endpoint), "tcp://127.0.0.1:7711", 0, 0, 0,
+     "Admin endpoint (ROUTER): supervisors put tasks and switch channels. Without --server-key\n"
+     "it must be loopback (tcp://127.0.0.1, tcp://[::1], tcp://localhost) or ipc://."},
+    {"--events", "VEER_EVENTS", OPT_STR, OFF(events_endpoint), "tcp://127.0.0.1:7712", 0, 0, 0,
+     "Events endpoint (PUB): switches, stored and dropped tasks, model loads."},
+    {"--http", "VEER_HTTP", OPT_STR, OFF(http_endpoint), NULL, 0, 0, 0,
+     "HOST:PORT for the HTTP metrics and health endpoint (reserved; not served yet)."},
+    {"--default-deadline-us", "VEER_DEFAULT_DEADLINE_US", OPT_U32, OFF(default_deadline_us),
+     "1000", 10, 10000000, 0,
+     "Deadline in microseconds for act requests that do not carry one."},
+    {"--max-message-bytes", "VEER_MAX_MESSAGE_BYTES", OPT_U32, OFF(max_message_bytes),
+     "16777216", 1024, 1073741824, 0,
+     "Largest admin request handled. Up to twice this gets an EMSGSIZE error reply; beyond\n"
+     "that libzmq closes the sender's connection without a reply."},
+    {"--act-max-message-bytes", "VEER_ACT_MAX_MESSAGE_BYTES", OPT_U32,
+     OFF(act_max_message_bytes), "65536", 256, 16777216, 0,
+     "Largest act request handled (the same two-step rule as --max-message-bytes)."},
+    {"--max-samples", "VEER_MAX_SAMPLES", OPT_U32, OFF(max_samples), "100000", 1, 1000000, 0,
+     "Most samples, goals or reference rewards one task may carry."},
+    {"--max-tasks", "VEER_MAX_TASKS", OPT_U32, OFF(max_tasks), "1024", 1, 1000000, 0,
+     "Most tasks the registry holds."},
+    {"--max-channels", "VEER_MAX_CHANNELS", OPT_U32, OFF(max_channels), "256", 1, 65536, 0,
+     "Size of the channel table (fixed at start so controllers read it without locks)."},
+    {"--journal-compact-bytes", "VEER_JOURNAL_COMPACT_BYTES", OPT_U32,
+     OFF(journal_compact_bytes), "67108864", 4096, 4000000000u, 0,
+     "Rewrite the journal with only live tasks and switches once it grows past this size."},
+    {"--server-key", "VEER_SERVER_KEY", OPT_STR, OFF(server_key_path), NULL, 0, 0, 0,
+     "File with the server's CURVE secret key (Z85, 40 characters). Turns on CurveZMQ for\n"
+     "the admin socket; needs --allowed-keys."},
+    {"--allowed-keys", "VEER_ALLOWED_KEYS", OPT_STR, OFF(allowed_keys_path), NULL, 0, 0, 0,
+     "File of client public keys (Z85, one per line, '#' comments) allowed to connect."},
+    {"--act-auth", "VEER_ACT_AUTH", OPT_BOOL, OFF(act_auth), "0", 0, 1, 0,
+     "Require CURVE authentication on the act socket too (0 or 1; needs --server-key)."},
+};
+#define OPTION_COUNT (sizeof OPTIONS / sizeof OPTIONS[0])
+
+static int set_value(veer__config *cfg, const opt_desc *o, const char *text, const char *source,
+                     veer_error *err)
+{
+    char *base = (char *)cfg + o->offset;
+    if (o->kind == OPT_STR) {
+        if (strlen(text) >= VEER__CONFIG_STR_MAX)
+            return veer__error_set(err, VEER_ECONFIG, o->flag, "%s: value from %s is longer than %d bytes",
+                                   o->flag, source, VEER__CONFIG_STR_MAX - 1);
+        memcpy(base, text, strlen(text) + 1);
+        return 0;
+    }
+    if (o->kind == OPT_BOOL) {
+        if (strcmp(text, "1") == 0 || strcmp(text, "true") == 0 || strcmp(text, "yes") == 0)
+            *(uint32_t *)base = 1;
+        else if (strcmp(text, "0") == 0 || strcmp(text, "false") == 0 || strcmp(text, "no") == 0)
+            *(uint32_t *)base = 0;
+        else
+            return veer__error_set(err, VEER_ECONFIG, o->flag,
+                                   "%s: expected 0 or 1 (from %s), got '%s'", o->flag, source, text);
+        return 0;
+    }
+    char *end = NULL;
+    errno = 0;
+    unsigned long long v = strtoull(text, &end, 10);
+    if (errno != 0 || end == text || *end != '\0' || text[0] == '-' || v < o->min || v > o->max)
+        return veer__error_set(err, VEER_ECONFIG, o->flag,
+                               "%s: expected an integer from %" PRIu32 " to %" PRIu32
+                               " (from %s), got '%s'",
+                               o->flag, o->min, o->max, source, text);
+    *(uint32_t *)base = (uint32_t)v;
+    return 0;
+}
+
+static int check_endpoint(const char *flag, const char *ep, veer_error *err)
+{
+    if (strncmp(ep, "tcp://", 6) != 0 && strncmp(ep, "ipc://", 6) != 0)
+        return veer__error_set(err, VEER_ECONFIG, flag,
+                               "%s: '%s' is not a tcp:// or ipc:// endpoint", flag, ep);
+    if (ep[6] == '\0')
+        return veer__error_set(err, VEER_ECONFIG, flag, "%s: endpoint '%s' has no address", flag, ep);
+    return 0;
+}
+
+static int check_whole(const veer__config *cfg, const int given[OPTION_COUNT], veer_error *err)
+{
+    for (size_t i = 0; i < OPTION_COUNT; i++) {
+        const opt_desc *o = &OPTIONS[i];
+        if (o->required && !given[i])
+            return veer__error_set(err, VEER_ECONFIG, o->flag, "%s (or %s) is required: %s",
+                                   o->flag, o->env, o->help);
+    }
+    int rc;
+    if ((rc = check_endpoint("--act", cfg->act_endpoint, err)) < 0 ||
+        (rc = check_endpoint("--admin", cfg->admin_endpoint, err)) < 0 ||
+        (rc = check_endpoint("--events", cfg->events_endpoint, err)) < 0)
+        return rc;
+    if (strcmp(cfg->act_endpoint, cfg->admin_endpoint) == 0)
+        return veer__error_set(err, VEER_ECONFIG, "--admin", "--admin must differ from --act (both '%s')",
+                               cfg->act_endpoint);
+    if (strcmp(cfg->events_endpoint, cfg->admin_endpoint) == 0 ||
+        strcmp(cfg->events_endpoint, cfg->act_endpoint) == 0)
+        return veer__error_set(err, VEER_ECONFIG, "--events",
+                               "--events must differ from --act and --admin ('%s')", cfg->events_endpoint);
+    if (cfg->server_key_path[0] != '\0' && cfg->allowed_keys_path[0] == '\0')
+        return veer__error_set(err, VEER_ECONFIG, "--allowed-keys",
+                               "--server-key needs --allowed-keys: a file of client public keys");
+    if (cfg->allowed_keys_path[0] != '\0' && cfg->server_key_path[0] == '\0')
+        return veer__error_set(err, VEER_ECONFIG, "--server-key",
+                               "--allowed-keys needs --server-key: the server's secret key file");
+    if (cfg->act_auth && cfg->server_key_path[0] == '\0')
+        return veer__error_set(err, VEER_ECONFIG, "--act-auth", "--act-auth needs --server-key and --allowed-keys");
+    if (cfg->state_dir[0] == '\0')
+        return veer__error_set(err, VEER_ECONFIG, "--state-dir", "--state-dir must not be empty");
+    return 0;
+}
+
+int veer__config_parse(veer__config *cfg, int argc, char **argv, veer_error *err)
+{
+    int given[OPTION_COUNT] = {0};
+    int rc;
+    memset(cfg, 0, sizeof *cfg);
+    for (size_t i = 0; i < OPTION_COUNT; i++) {
+        if (OPTIONS[i].fallback != NULL &&
+            (rc = set_value(cfg, &OPTIONS[i], OPTIONS[i].fallback, "the default", err)) < 0)
+            return rc;
+    }
+    for (size_t i = 0; i < OPTION_COUNT; i++) {
+        const char *v = getenv(OPTIONS[i].env);
+        if (v == NULL)
+            continue;
+        if ((rc = set_value(cfg, &OPTIONS[i], v, OPTIONS[i].env, err)) < 0)
+            return rc;
+        given[i] = 1;
+    }
+    for (int a = 1; a < argc; a++) {
+        const char *arg = argv[a];
+        if (strcmp(arg, "--help") == 0 || strcmp(arg, "-h") == 0)
+            return VEER__CONFIG_HELP;
+        if (strcmp(arg, "--version") == 0)
+            return VEER__CONFIG_VERSION;
+        /* Accept both "--flag value" and "--flag=value". */
+        const char *eq = strchr(arg, '=');
+        size_t name_len = eq ? (size_t)(eq - arg) : strlen(arg);
+        const opt_desc *o = NULL;
+        size_t idx = 0;
+        for (size_t i = 0; i < OPTION_COUNT; i++) {
+            if (strlen(OPTIONS[i].flag) == name_len && strncmp(OPTIONS[i].flag, arg, name_len) == 0) {
+                o = &OPTIONS[i];
+                idx = i;
+                break;
+            }
+        }
+        if (o == NULL)
+            return veer__error_set(err, VEER_ECONFIG, arg, "unknown option '%s' (see veerd --help)", arg);
+        const char *value = NULL;
+        if (eq != NULL)
+            value = eq + 1;
+        else if (o->kind == OPT_BOOL && (a + 1 >= argc || strncmp(argv[a + 1], "--", 2) == 0))
+            value = "1"; /* a bare boolean flag switches the option on */
+        else if (a + 1 < argc)
+            value = argv[++a];
+        else
+            return veer__error_set(err, VEER_ECONFIG, o->flag, "%s needs a value", o->flag);
+        if ((rc = set_value(cfg, o, value, "the command line", err)) < 0)
+            return rc;
+        given[idx] = 1;
+    }
+    return check_whole(cfg, given, err);
+}
+
+void veer__config_help(void *out)
+{
+    FILE *f = out;
+    fprintf(f,
+            "Usage: veerd --bundle MODEL.veer [options]\n"
+            "\n"
+            "veerd serves a frozen forward-backward model to real-time controllers over ZeroMQ:\n"
+            "controllers ask for actions on the act socket, supervisors register tasks and switch\n"
+            "channels on the admin socket, operators subscribe to the events socket. Every\n"
+            "acknowledged task and switch is journaled in the state directory and restored on\n"
+            "start.\n"
+            "\n"
+            "Each option may also come from the environment variable shown; the flag wins.\n"
+            "Values: --flag VALUE or --flag=VALUE.\n\n");
+    for (size_t i = 0; i < OPTION_COUNT; i++) {
+        const opt_desc *o = &OPTIONS[i];
+        fprintf(f, "  %s %s   (%s", o->flag, o->kind == OPT_U32 ? "N" : o->kind == OPT_BOOL ? "[0|1]" : "VALUE",
+                o->env);
+        if (o->required)
+            fprintf(f, ", required");
+        else if (o->fallback != NULL)
+            fprintf(f, ", default %s", o->fallback);
+        if (o->kind == OPT_U32)
+            fprintf(f, ", %" PRIu32 "..%" PRIu32, o->min, o->max);
+        fprintf(f, ")\n      ");
+        for (const char *c = o->help; *c; c++) {
+            fputc(*c, f);
+            if (*c == '\n')
+                fputs("      ", f);
+        }
+        fputc('\n', f);
+    }
+    fprintf(f,
+            "\n  --help      this text\n  --version   veerd's version\n"
+            "\nSignals: SIGTERM or SIGINT stop taking requests, answer those in flight, flush the\n"
+            "journal and exit 0.\n"
+            "Exit codes: 0 clean stop, 1 start-up failure (bundle, state directory, sockets),\n"
+            "2 bad configuration (the message names the flag).\n");
+}
+
+void veer__config_print(const veer__config *cfg, void *out)
+{
+    FILE *f = out;
+    for (size_t i = 0; i < OPTION_COUNT; i++) {
+        const opt_desc *o = &OPTIONS[i];
+        const char *base = (const char *)cfg + o->offset;
+        if (o->kind == OPT_STR)
+            fprintf(f, "veerd: config %s = %s\n", o->flag, base);
+        else
+            fprintf(f, "veerd: config %s = %" PRIu32 "\n", o->flag, *(const uint32_t *)base);
+    }
+}

@@ -1,0 +1,48 @@
+/* veerd's configuration: every setting has a command-line flag and a VEER_* environment
+ * variable (the flag wins), a default, a range, and a line of --help. One table in config.c
+ * describes them all, so the parser, the checks and the help text cannot drift apart. */
+#ifndef VEER_SERVICE_CONFIG_H
+#define VEER_SERVICE_CONFIG_H
+
+#include <stddef.h>
+#include <stdint.h>
+
+#include "veer/error.h"
+
+#define VEER__CONFIG_STR_MAX 512
+
+typedef struct veer__config {
+    char act_endpoint[VEER__CONFIG_STR_MAX];
+    char admin_endpoint[VEER__CONFIG_STR_MAX];
+    char events_endpoint[VEER__CONFIG_STR_MAX];
+    char bundle_path[VEER__CONFIG_STR_MAX];
+    char state_dir[VEER__CONFIG_STR_MAX];
+    char http_endpoint[VEER__CONFIG_STR_MAX]; /* "" when off; served by the metrics work */
+    char server_key_path[VEER__CONFIG_STR_MAX];
+    char allowed_keys_path[VEER__CONFIG_STR_MAX];
+    uint32_t act_auth;             /* 1: controllers must authenticate with CURVE too */
+    uint32_t default_deadline_us;
+    uint32_t max_message_bytes;    /* admin socket */
+    uint32_t act_max_message_bytes;
+    uint32_t max_samples;          /* per task: samples, goals or reference rewards */
+    uint32_t max_tasks;
+    uint32_t max_channels;
+    uint32_t journal_compact_bytes;
+} veer__config;
+
+/* Results of veer__config_parse besides 0 and VEER_ECONFIG. */
+#define VEER__CONFIG_HELP 1    /* --help was given: the caller prints veer__config_help, exits 0 */
+#define VEER__CONFIG_VERSION 2 /* --version was given */
+
+/* Fills `cfg` from the defaults, then the environment (`getenv`), then `argv`.
+ * Returns 0, VEER__CONFIG_HELP, VEER__CONFIG_VERSION, or VEER_ECONFIG with `err->field` set to
+ * the flag (e.g. "--max-tasks") and a message saying what was expected. */
+int veer__config_parse(veer__config *cfg, int argc, char **argv, veer_error *err);
+
+/* Writes the --help text (every flag, its variable, default and meaning) to `out` (a FILE *). */
+void veer__config_help(void *out);
+
+/* Writes the effective configuration, one "flag = value" per line, for the start-up log. */
+void veer__config_print(const veer__config *cfg, void *out);
+
+#endif
