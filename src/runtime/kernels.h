@@ -1,0 +1,52 @@
+/* Dense kernels for the networks, on OpenBLAS. Each works on `n` rows stored row-major and
+ * contiguous (row stride = width), writes into caller-provided memory and allocates nothing,
+ * so the act path can call them freely. Linear layers use sgemv for a single row (OpenBLAS's
+ * gemv is faster than a one-row gemm) and sgemm for batches. Prefix veer__k_. */
+#ifndef VEER_RUNTIME_KERNELS_H
+#define VEER_RUNTIME_KERNELS_H
+
+#include <stddef.h>
+#include <stdint.h>
+
+/* y = x Wᵀ + b for n rows: x is n x in, W is out x in (row-major, as PyTorch stores it),
+ * b has out values or is NULL (no bias), y is n x out. x and y must not overlap. */
+void veer__k_linear(size_t n, uint32_t in, uint32_t out, const float *x, const float *w,
+                    const float *b, float *y);
+
+/* In place over `count` values: max(x, 0) and tanh(x). NaN stays NaN in both, so a broken
+ * network shows up as a non-finite output rather than being hidden by the activation. */
+void veer__k_relu(size_t count, float *x);
+void veer__k_tanh(size_t count, float *x);
+
+/* Layer normalisation per row (Ba, Kiros & Hinton 2016, "Layer Normalization", eq. 4, with
+ * the population variance): y = gain * (x - mean) / sqrt(var + eps) + bias.
+ * gain and bias have dim values or are NULL (gain 1, bias 0). In place allowed (x == y).
+ * eps must be > 0, so a constant row gives y = bias instead of 0/0. */
+void veer__k_layer_norm(size_t n, uint32_t dim, const float *x, const float *gain,
+                        const float *bias, float eps, float *y);
+
+/* In place per row: x <- x * norm / ||x||₂. A row whose norm is 0 (or too small for the quotient
+ * to be finite) has no direction to keep: it is set to all zeros, which stays finite and keeps
+ * F·z = 0 for it. Returns how many rows were so degenerate, for callers that want to flag it. */
+size_t veer__k_rescale_norm(size_t n, uint32_t dim, float norm, float *x);
+
+/* Copies a block of n rows x width columns from src (row stride src_stride) to dst (row stride
+ * dst_stride): the building block of concatenation. */
+void veer__k_copy_cols(size_t n, uint32_t width, const float *src, size_t src_stride, float *dst,
+                       size_t dst_stride);
+
+/* Embedding lookup. Each row of x holds `in` indices as floats; index j must be an integer in
+ * [0, counts[j]). The joint index is mixed-radix, row-major: ((i0 * c1 + i1) * c2 + i2) ...;
+ * y's row is row `joint` of table (rows x out). Returns 0, or -1 - r for the first row r holding
+ * an index that is not an integer in range; that row and those after it are not written, and
+ * the table is never read out of bounds. */
+long veer__k_embedding(size_t n, uint32_t in, const uint32_t *counts, uint32_t out,
+                       const float *x, const float *table, float *y);
+
+/* Row-wise dot products: v[r] = a[r,:] · z for n rows of dim values (Q = F(s, a, z) · z). */
+void veer__k_row_dot(size_t n, uint32_t dim, const float *a, const float *z, float *v);
+
+/* 1 when all count values are finite. */
+int veer__k_all_finite(size_t count, const float *x);
+
+#endif

@@ -1,0 +1,185 @@
+/* Evaluating a network (see net.h) on a block of rows with a thread's own buffers.
+ *
+ * Each branch builds its input rows in `in`, runs its layers ping-ponging between `ping` and
+ * `pong` (element-wise layers work in place), and leaves its output side by side with the other
+ * branches' in `branches`; the merge and the head then run from there. A branch that reads
+ * neither the action nor a per-row z gives the same output for every action of a state, so
+ * when the rows repeat each state (discrete acting) it is evaluated once per state and its
+ * output copied: for the usual F with a state-action branch and a z branch this halves the work
+ * of the z branch. */
+#include "runtime/net.h"
+
+#include <cblas.h>
+#include <string.h>
+
+#include "runtime/kernels.h"
+#include "veer/error.h"
+
+void veer__net_buf_sizes(const veer__net *net, size_t rows, size_t sizes[3])
+{
+    size_t need[3] = {rows * net->max_in_width, rows * net->max_width, rows * net->branch_width};
+    for (int i = 0; i < 3; i++)
+        if (need[i] > sizes[i])
+            sizes[i] = need[i];
+}
+
+/* Writes the input row block for one branch. state_rep is 1 when the branch runs once per
+ * state. Returns VEER_EINVAL for a discrete action that is not an integer in [0, count). */
+static int build_inputs(const veer__branch *br, const veer__rows *rows, size_t n,
+                        uint32_t state_rep, float *in)
+{
+    for (size_t r = 0; r < n; r++) {
+        float *row = in + r * br->in_width;
+        const float *s = rows->states + (r / state_rep) * rows->state_dim;
+        size_t arow = rows->action_cycle ? r % rows->action_cycle : r;
+        const float *a = rows->actions ? rows->actions + arow * rows->action_dim : NULL;
+        const float *z = rows->zs ? rows->zs + (rows->z_shared ? 0 : r) * rows->z_dim : NULL;
+        for (uint32_t i = 0; i < br->input_count; i++) {
+            const veer__input *inp = &br->inputs[i];
+            switch (inp->kind) {
+            case VEER__INPUT_STATE:
+                if (inp->features == NULL)
+                    memcpy(row, s, (size_t)inp->width * sizeof *row);
+                else
+                    for (uint32_t j = 0; j < inp->width; j++)
+                        row[j] = s[inp->features[j]];
+                break;
+            case VEER__INPUT_ACTION:
+                memcpy(row, a, (size_t)inp->width * sizeof *row);
+                break;
+            case VEER__INPUT_ACTION_ONEHOT: {
+                float v = a[0];
+                if (!(v >= 0.0f && v < (float)inp->width) || v != (float)(uint32_t)v)
+                    return VEER_EINVAL;
+                memset(row, 0, (size_t)inp->width * sizeof *row);
+                row[(uint32_t)v] = 1.0f;
+                break;
+            }
+            case VEER__INPUT_ACTION_INDEX:
+                row[0] = a[0]; /* the embedding layer checks the range */
+                break;
+            case VEER__INPUT_TASK:
+                memcpy(row, z, (size_t)inp->width * sizeof *row);
+                break;
+            }
+            row += inp->width;
+        }
+    }
+    return 0;
+}
+
+/* Runs `count` layers over n rows starting at *cur (width *width); *cur ends at the output. */
+static int run_layers(const veer__layer *layers, uint32_t count, const veer__net_bufs *bufs,
+                      size_t n, const float **cur_io, uint32_t *width)
+{
+    float *cur = (float *)*cur_io;
+    for (uint32_t i = 0; i < count; i++) {
+        const veer__layer *l = &layers[i];
+        float *dst = cur == bufs->ping ? bufs->pong : bufs->ping;
+        switch (l->kind) {
+        case VEER__LAYER_LINEAR:
+            veer__k_linear(n, l->in_dim, l->out_dim, cur, l->weight, l->bias, dst);
+            cur = dst;
+            break;
+        case VEER__LAYER_EMBEDDING:
+            if (veer__k_embedding(n, l->in_dim, l->counts, l->out_dim, cur, l->weight, dst) != 0)
+                return VEER_EINVAL;
+            cur = dst;
+            break;
+        case VEER__LAYER_RELU:
+            veer__k_relu(n * l->out_dim, cur);
+            break;
+        case VEER__LAYER_TANH:
+            veer__k_tanh(n * l->out_dim, cur);
+            break;
+        case VEER__LAYER_LAYER_NORM:
+            veer__k_layer_norm(n, l->out_dim, cur, l->weight, l->bias, l->eps, cur);
+            break;
+        case VEER__LAYER_RESCALE:
+            veer__k_rescale_norm(n, l->out_dim, l->norm, cur);
+            break;
+        }
+        *width = l->out_dim;
+    }
+    *cur_io = cur;
+    return 0;
+}
+
+static int eval_branch(const veer__net *net, uint32_t b, const veer__net_bufs *bufs,
+                       const veer__rows *rows, uint32_t col)
+{
+    const veer__branch *br = &net->branches[b];
+    uint32_t rep = rows->state_rep ? rows->state_rep : 1;
+    int once_per_state = rep > 1 && !br->reads_action && (rows->z_shared || !br->reads_task);
+    size_t n = once_per_state ? rows->n / rep : rows->n;
+
+    int rc = build_inputs(br, rows, n, once_per_state ? 1 : rep, bufs->in);
+    if (rc != 0)
+        return rc;
+    const float *cur = bufs->in;
+    uint32_t width = br->in_width;
+    rc = run_layers(br->layers, br->layer_count, bufs, n, &cur, &width);
+    if (rc != 0)
+        return rc;
+
+    size_t stride = net->branch_width;
+    if (!once_per_state) {
+        veer__k_copy_cols(n, width, cur, width, bufs->branches + col, stride);
+    } else {
+        for (size_t u = 0; u < n; u++)
+            for (uint32_t j = 0; j < rep; j++)
+                memcpy(bufs->branches + (u * rep + j) * stride + col, cur + u * width,
+                       (size_t)width * sizeof *cur);
+    }
+    return 0;
+}
+
+/* out_r = v_rᵀ M_r (+ the bias row of M_r), with M_r the matrix branch's output of row r. */
+static void merge_bilinear(const veer__net *net, const veer__net_bufs *bufs, size_t n)
+{
+    uint32_t k = net->bilinear_k, out = net->merged_width;
+    uint32_t mcol = 0, vcol = 0;
+    for (uint32_t b = 0; b < net->branch_count; b++) {
+        if (b == net->matrix_branch)
+            break;
+        mcol += net->branches[b].out_dim;
+    }
+    vcol = net->matrix_branch == 0 ? net->branches[0].out_dim : 0;
+    for (size_t r = 0; r < n; r++) {
+        const float *row = bufs->branches + r * net->branch_width;
+        const float *m = row + mcol, *v = row + vcol;
+        float *y = bufs->ping + r * out;
+        float beta = 0.0f;
+        if (net->bilinear_bias) {
+            memcpy(y, m + (size_t)k * out, (size_t)out * sizeof *y);
+            beta = 1.0f;
+        }
+        cblas_sgemv(CblasRowMajor, CblasTrans, (int)k, (int)out, 1.0f, m, (int)out, v, 1, beta, y,
+                    1);
+    }
+}
+
+int veer__net_eval(const veer__net *net, const veer__net_bufs *bufs, const veer__rows *rows,
+                   const float **out)
+{
+    uint32_t col = 0;
+    for (uint32_t b = 0; b < net->branch_count; b++) {
+        int rc = eval_branch(net, b, bufs, rows, col);
+        if (rc != 0)
+            return rc;
+        col += net->branches[b].out_dim;
+    }
+
+    const float *cur = bufs->branches;
+    uint32_t width = net->branch_width;
+    if (net->merge == VEER__MERGE_BILINEAR) {
+        merge_bilinear(net, bufs, rows->n);
+        cur = bufs->ping;
+        width = net->merged_width;
+    }
+    int rc = run_layers(net->head, net->head_count, bufs, rows->n, &cur, &width);
+    if (rc != 0)
+        return rc;
+    *out = cur;
+    return 0;
+}

@@ -1,0 +1,152 @@
+/* Acting and the public network evaluations. The act path is: check the inputs are finite,
+ * evaluate in slices of at most max_batch states, then turn network outputs into actions that
+ * are always finite and within bounds. Continuous: actor, affine map from [-1, 1] when the
+ * actor is normalised, clip, then Q = F(s, a, z)·z for the clipped action (the value of what
+ * is actually done). Discrete: F for every action of every state in one batched evaluation
+ * (one pass over the weights instead of action_count passes), argmax of F·z with the lowest
+ * index winning ties, Q the maximum. Nothing here allocates or locks. */
+#include <math.h>
+#include <string.h>
+
+#include "runtime/kernels.h"
+#include "runtime/workspace.h"
+#include "veer/runtime.h"
+
+static void write_fallback(const veer_model_info *info, float *action, float *value,
+                           uint32_t *flags)
+{
+    memcpy(action, info->fallback_action, (size_t)info->action_dim * sizeof *action);
+    *value = 0.0f;
+    *flags = VEER_ACT_FALLBACK | VEER_ACT_NONFINITE;
+}
+
+/* m states of a continuous bundle. */
+static int act_continuous(veer_workspace *ws, size_t m, const float *states, const float *z,
+                          float *actions, float *values, uint32_t *flags)
+{
+    const veer_bundle *b = ws->bundle;
+    const veer_model_info *info = &b->info;
+    uint32_t adim = info->action_dim;
+    veer__rows rows = {.n = m, .state_dim = info->state_dim, .states = states, .state_rep = 1,
+                       .action_dim = adim, .zs = z, .z_dim = info->z_dim, .z_shared = 1};
+    const float *y;
+    int rc = veer__net_eval(&b->actor, &ws->bufs, &rows, &y);
+    if (rc != 0)
+        return rc;
+
+    for (size_t r = 0; r < m; r++) {
+        uint32_t f = 0;
+        for (uint32_t j = 0; j < adim; j++) {
+            float lo = info->action_low[j], hi = info->action_high[j];
+            float v = y[r * adim + j], a;
+            if (b->actor_normalized) {
+                if (v < -1.0f || v > 1.0f)
+                    f |= VEER_ACT_CLIPPED;
+                a = lo + (v + 1.0f) * 0.5f * (hi - lo);
+            } else {
+                if (v < lo || v > hi)
+                    f |= VEER_ACT_CLIPPED;
+                a = v;
+            }
+            /* Always clamp: the affine map can round a hair past a bound. NaN passes both
+             * tests and is caught below. */
+            a = a < lo ? lo : a;
+            a = a > hi ? hi : a;
+            ws->actions[r * adim + j] = a;
+        }
+        flags[r] = f;
+    }
+
+    rows.actions = ws->actions;
+    const float *fo;
+    if ((rc = veer__net_eval(&b->forward, &ws->bufs, &rows, &fo)) != 0)
+        return rc;
+    veer__k_row_dot(m, info->z_dim, fo, z, ws->values);
+
+    for (size_t r = 0; r < m; r++) {
+        const float *a = ws->actions + r * adim;
+        if (!isfinite(ws->values[r]) || !veer__k_all_finite(adim, a)) {
+            write_fallback(info, actions + r * adim, &values[r], &flags[r]);
+            continue;
+        }
+        memcpy(actions + r * adim, a, (size_t)adim * sizeof *a);
+        values[r] = ws->values[r];
+    }
+    return 0;
+}
+
+/* m states of a discrete bundle. */
+static int act_discrete(veer_workspace *ws, size_t m, const float *states, const float *z,
+                        float *actions, float *values, uint32_t *flags)
+{
+    const veer_bundle *b = ws->bundle;
+    const veer_model_info *info = &b->info;
+    uint32_t count = info->action_count;
+    veer__rows rows = {.n = m * count, .state_dim = info->state_dim, .states = states,
+                       .state_rep = count, .actions = b->action_index, .action_dim = 1,
+                       .action_cycle = count, .zs = z, .z_dim = info->z_dim, .z_shared = 1};
+    const float *fo;
+    int rc = veer__net_eval(&b->forward, &ws->bufs, &rows, &fo);
+    if (rc != 0)
+        return rc;
+    veer__k_row_dot(m * count, info->z_dim, fo, z, ws->values);
+
+    for (size_t r = 0; r < m; r++) {
+        const float *q = ws->values + r * count;
+        uint32_t best = 0;
+        int finite = 1;
+        for (uint32_t a = 0; a < count; a++) {
+            finite &= isfinite(q[a]) != 0;
+            if (q[a] > q[best]) /* strict: the lowest index wins a tie */
+                best = a;
+        }
+        if (!finite) {
+            write_fallback(info, &actions[r], &values[r], &flags[r]);
+            continue;
+        }
+        actions[r] = (float)best;
+        values[r] = q[best];
+        flags[r] = 0;
+    }
+    return 0;
+}
+
+int veer_act_batch(veer_workspace *ws, size_t n, const float *states, const float *z,
+                   float *actions, float *values, uint32_t *flags)
+{
+    if (ws == NULL || states == NULL || z == NULL || actions == NULL)
+        return VEER_EINVAL;
+    const veer_model_info *info = &ws->bundle->info;
+    if (!veer__k_all_finite(n * info->state_dim, states) || !veer__k_all_finite(info->z_dim, z))
+        return VEER_ENONFINITE;
+
+    /* Callers that pass NULL for values or flags get them into the workspace's scratch. */
+    for (size_t done = 0; done < n; done += ws->max_batch) {
+        size_t m = n - done < ws->max_batch ? n - done : ws->max_batch;
+        const float *s = states + done * info->state_dim;
+        float *a = actions + done * info->action_dim;
+        float *v = values ? values + done : ws->slice_values;
+        uint32_t *f = flags ? flags + done : ws->slice_flags;
+        int rc = info->action_kind == VEER_ACTION_CONTINUOUS
+                     ? act_continuous(ws, m, s, z, a, v, f)
+                     : act_discrete(ws, m, s, z, a, v, f);
+        if (rc != 0)
+            return rc;
+    }
+    return 0;
+}
+
+int veer_act(veer_workspace *ws, const float *state, const float *z, float *action, float *value,
+             uint32_t *flags)
+{
+    float v;
+    uint32_t f;
+    int rc = veer_act_batch(ws, 1, state, z, action, &v, &f);
+    if (rc == 0) {
+        if (value != NULL)
+            *value = v;
+        if (flags != NULL)
+            *flags = f;
+    }
+    return rc;
+}

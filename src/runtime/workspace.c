@@ -1,0 +1,96 @@
+/* Workspaces (one per acting thread) and the process-wide OpenBLAS settings. A workspace is
+ * one aligned block cut into the network buffers, sized for the widest layer of F, B and the
+ * actor at the largest row count each can see (discrete acting evaluates F on every action of
+ * every state in a slice at once). Creating one also pins OpenBLAS to a single thread: a
+ * one-state product is too small to gain from a second thread, and on a shared machine a
+ * second thread makes latency depend on whatever else runs on the other core. */
+#include <cblas.h>
+#include <string.h>
+
+#include "base/base.h"
+#include "runtime/workspace.h"
+#include "veer/runtime.h"
+
+#define VEER__MAX_BATCH (1u << 20)
+
+/* Floats rounded up to whole 64-byte lines, so every piece of the block stays aligned. */
+static size_t lines(size_t floats) { return (floats + 15) & ~(size_t)15; }
+
+int veer_workspace_create(const veer_bundle *bundle, uint32_t max_batch, veer_workspace **out,
+                          veer_error *err)
+{
+    veer_error_clear(err);
+    if (out == NULL || bundle == NULL)
+        return veer__error_set(err, VEER_EINVAL, out ? "bundle" : "out", "must not be NULL");
+    *out = NULL;
+    if (max_batch == 0 || max_batch > VEER__MAX_BATCH)
+        return veer__error_set(err, VEER_EINVAL, "max_batch", "max_batch is %u; it must be in 1..%u",
+                               max_batch, VEER__MAX_BATCH);
+
+    const veer_model_info *info = &bundle->info;
+    size_t per_state = info->action_kind == VEER_ACTION_DISCRETE ? info->action_count : 1;
+    size_t f_rows = (size_t)max_batch * per_state;
+    size_t sizes[3] = {0, 0, 0};
+    veer__net_buf_sizes(&bundle->forward, f_rows, sizes);
+    veer__net_buf_sizes(&bundle->backward, max_batch, sizes);
+    if (bundle->has_actor)
+        veer__net_buf_sizes(&bundle->actor, max_batch, sizes);
+    size_t n_actions = (size_t)max_batch * info->action_dim;
+    /* Every factor is capped (VEER__MAX_DIM, VEER__MAX_BATCH), so these sums cannot overflow. */
+    size_t floats = lines(sizes[0]) + 2 * lines(sizes[1]) + lines(sizes[2]) + lines(n_actions) +
+                    lines(f_rows) + 2 * lines(max_batch);
+
+    veer_workspace *ws = veer__calloc(1, sizeof *ws);
+    if (ws == NULL)
+        return veer__error_set(err, VEER_ENOMEM, "workspace", NULL);
+    float *p = veer__malloc_aligned(floats * sizeof(float));
+    if (p == NULL) {
+        veer__free(ws);
+        return veer__error_set(err, VEER_ENOMEM, "max_batch",
+                               "no memory for a %zu-byte workspace; lower max_batch",
+                               floats * sizeof(float));
+    }
+    /* Touch every page now so the first act does not pay for page faults. */
+    memset(p, 0, floats * sizeof(float));
+    ws->block = p;
+    ws->bundle = bundle;
+    ws->max_batch = max_batch;
+    ws->f_rows = f_rows;
+    ws->bufs.rows = f_rows;
+    ws->bufs.in = p;
+    p += lines(sizes[0]);
+    ws->bufs.ping = p;
+    p += lines(sizes[1]);
+    ws->bufs.pong = p;
+    p += lines(sizes[1]);
+    ws->bufs.branches = p;
+    p += lines(sizes[2]);
+    ws->actions = p;
+    p += lines(n_actions);
+    ws->values = p;
+    p += lines(f_rows);
+    ws->slice_values = p;
+    p += lines(max_batch);
+    ws->slice_flags = (uint32_t *)p; /* same size and alignment as float */
+
+    openblas_set_num_threads(1);
+    *out = ws;
+    return 0;
+}
+
+void veer_workspace_destroy(veer_workspace *ws)
+{
+    if (ws == NULL)
+        return;
+    veer__free_aligned(ws->block);
+    veer__free(ws);
+}
+
+int veer_blas_threads(int n)
+{
+    int prev = openblas_get_num_threads();
+    openblas_set_num_threads(n < 1 ? 1 : n);
+    return prev;
+}
+
+const char *veer_blas_kernel(void) { return openblas_get_corename(); }
