@@ -141,6 +141,10 @@ int veer_client_open(const veer_client_options *o, veer_client **out, veer_error
             rc = veer__error_set(err, VEER_ENOMEM, "", "out of memory for the act buffers");
             goto fail_sockets;
         }
+        if (veer_hist_create(&c->histogram) != 0) {
+            rc = veer__error_set(err, VEER_ENOMEM, "", "out of memory for the act histogram");
+            goto fail_sockets;
+        }
         if ((rc = veer_client_describe(c, NULL, err)) != 0)
             goto fail_sockets;
     }
@@ -181,6 +185,7 @@ void veer_client_close(veer_client *c)
     veer__free(c->send_buf);
     veer__free(c->recv_buf);
     veer__free(c->arena);
+    veer_hist_destroy(c->histogram);
     veer__free(c);
 }
 

@@ -21,6 +21,8 @@ void veer_client_act_stats_get(const veer_client *c, veer_client_act_stats *out)
     *out = c->stats;
 }
 
+const veer_hist *veer_client_act_histogram(const veer_client *c) { return c->histogram; }
+
 static void fill_fallback(const veer_client *c, float *action, veer_client_act_result *res,
                           uint64_t seq, uint32_t flags, uint64_t t0)
 {
@@ -118,6 +120,7 @@ int veer_client_act(veer_client *c, const char *channel, const float *state,
                 }
                 memcpy(action, ar->action, c->model.action_dim * sizeof *action);
                 c->stats.replies++;
+                veer_hist_record(c->histogram, veer__now_ns() - t0);
                 if (res != NULL) {
                     res->value = isfinite(ar->value) ? ar->value : 0.0f;
                     res->flags = ar->flags;
@@ -146,6 +149,7 @@ int veer_client_act(veer_client *c, const char *channel, const float *state,
         ppoll(&pfd, 1, &ts, NULL);
     }
     c->stats.deadline_fallbacks++;
+    veer_hist_record(c->histogram, veer__now_ns() - t0);
     fill_fallback(c, action, res, seq, VEER_ACT_FALLBACK | VEER_ACT_DEADLINE, t0);
     return 0;
 }

@@ -39,7 +39,7 @@ struct veer_client {
     size_t arena_used;
     ProtobufCAllocator arena_alloc;
     veer_client_act_stats stats;
-    void *histogram; /* act round trips, when the monitor's histogram is built in; else NULL */
+    veer_hist *histogram; /* act round trips (act socket only) */
 
     /* The last supervisor reply and the views built over it; freed on the next call. */
     Veer__Wire__Reply *last;

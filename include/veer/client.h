@@ -38,6 +38,7 @@
 #include <stdint.h>
 
 #include "veer/error.h"
+#include "veer/histogram.h"
 #include "veer/runtime.h" /* VEER_ACT_* flags and veer_task_spec, shared with the runtime */
 
 #ifdef __cplusplus
@@ -131,6 +132,12 @@ typedef struct veer_client_act_stats {
 } veer_client_act_stats;
 
 void veer_client_act_stats_get(const veer_client *client, veer_client_act_stats *out);
+
+/* The round trip of every act call that sent a request (reply or local fallback), in
+ * nanoseconds, recorded by the client's thread into a histogram the client owns (NULL without
+ * an act socket). Readers on other threads may read it while the client acts (see
+ * veer/histogram.h for the single-writer contract). */
+const veer_hist *veer_client_act_histogram(const veer_client *client);
 
 /* ---- Tasks and channels (supervisors) ----------------------------------------------------- */
 

@@ -15,7 +15,7 @@
 
 #include "cli.h"
 
-void veer_cli_conn_init(veer_cli_conn *cc, const char *command)
+void veer_cli_conn_init(veer_cli_conn *cc, const char *command, int argc, char **argv)
 {
     memset(cc, 0, sizeof *cc);
     cc->command = command;
@@ -24,6 +24,9 @@ void veer_cli_conn_init(veer_cli_conn *cc, const char *command)
     cc->server_key_file = getenv("VEER_SERVER_KEY");
     cc->key_prefix = getenv("VEER_KEY");
     cc->timeout_ms = 5000;
+    for (int i = 1; i < argc; i++)
+        if (strcmp(argv[i], "--json") == 0)
+            cc->json = 1;
 }
 
 static int complain_v(const veer_cli_conn *cc, int code, const char *field, const char *fmt,
@@ -208,7 +211,7 @@ int veer_cli_begin_admin(veer_cli_conn *cc, const char *command, const char *hel
     *out = NULL;
     if (veer_cli_wants_help(argc, argv, help))
         return -1;
-    veer_cli_conn_init(cc, command);
+    veer_cli_conn_init(cc, command, argc, argv);
     int got, rc;
     if ((rc = veer_cli_positional(cc, argc, argv, NULL, 0, &got)) != 0)
         return rc;

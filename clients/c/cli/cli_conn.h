@@ -32,8 +32,9 @@ typedef struct veer_cli_conn {
     char server_key[41], public_key[41], secret_key[41];
 } veer_cli_conn;
 
-/* Defaults from the environment. */
-void veer_cli_conn_init(veer_cli_conn *cc, const char *command);
+/* Defaults from the environment; --json anywhere in argv is noted at once, so even an error in
+ * an earlier flag is reported as JSON. */
+void veer_cli_conn_init(veer_cli_conn *cc, const char *command, int argc, char **argv);
 
 /* When argv[*i] is a connection flag, consumes it (and its value) and returns 1; returns 0 when
  * it is not one, or VEER_CLI_USAGE after printing what is wrong. */

@@ -35,7 +35,7 @@ static int run(int argc, char **argv)
         }
     }
     veer_cli_conn cc;
-    veer_cli_conn_init(&cc, "act");
+    veer_cli_conn_init(&cc, "act", argc, argv);
     const char *pos[2] = {NULL, NULL};
     int got = 0, rc;
     unsigned long deadline_us = 200000;

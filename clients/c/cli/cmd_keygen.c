@@ -47,7 +47,7 @@ static int run(int argc, char **argv)
     if (veer_cli_wants_help(argc, argv, HELP))
         return VEER_CLI_OK;
     veer_cli_conn cc;
-    veer_cli_conn_init(&cc, "keygen");
+    veer_cli_conn_init(&cc, "keygen", argc, argv);
     const char *prefix = NULL;
     int force = 0;
     for (int i = 1; i < argc; i++) {

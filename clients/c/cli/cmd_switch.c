@@ -18,7 +18,7 @@ static int run(int argc, char **argv)
     if (veer_cli_wants_help(argc, argv, HELP))
         return VEER_CLI_OK;
     veer_cli_conn cc;
-    veer_cli_conn_init(&cc, "switch");
+    veer_cli_conn_init(&cc, "switch", argc, argv);
     const char *pos[2] = {NULL, NULL};
     int got, rc;
     if ((rc = veer_cli_positional(&cc, argc, argv, pos, 2, &got)) != 0)

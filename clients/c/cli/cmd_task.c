@@ -372,7 +372,7 @@ static int run(int argc, char **argv)
     veer_cli_conn cc;
     char command[32];
     snprintf(command, sizeof command, "task %s", argv[1]);
-    veer_cli_conn_init(&cc, command);
+    veer_cli_conn_init(&cc, command, argc, argv);
     if (strcmp(argv[1], "put") == 0)
         return put(&cc, argc - 1, argv + 1);
     if (strcmp(argv[1], "list") == 0)
@@ -382,9 +382,6 @@ static int run(int argc, char **argv)
     if (strcmp(argv[1], "drop") == 0)
         return show_or_drop(&cc, argc - 1, argv + 1, 1);
     cc.command = "task";
-    for (int i = 2; i < argc; i++)
-        if (strcmp(argv[i], "--json") == 0)
-            cc.json = 1;
     return veer_cli_complain(&cc, VEER_CLI_USAGE, argv[1],
                              "unknown subcommand '%s'; use put, list, show or drop", argv[1]);
 }

@@ -1,0 +1,121 @@
+"""Fixtures for the client tests: paths to the built binaries, random-weight bundles from the
+exporter's helper (veer.synth), and a real veerd started per test on ipc:// or 127.0.0.1 with a
+temporary state directory, stopped by its process id."""
+import os
+import shutil
+import signal
+import socket
+import subprocess
+import tempfile
+import time
+
+import pytest
+
+BUILD = os.environ.get("VEER_BUILD_DIR", "")
+BIN = os.path.join(BUILD, "bin")
+VEER = os.path.join(BIN, "veer")
+VEERD = os.path.join(BIN, "veerd")
+PROBE = os.path.join(BIN, "client_probe")
+
+
+def need_veerd():
+    if not os.path.exists(VEERD):
+        pytest.skip("veerd is not built yet (src/service/main.c missing): nothing to test against")
+
+
+@pytest.fixture(scope="session")
+def bundles():
+    """Paths of two random-weight bundles written once per session: a continuous-action one
+    and a discrete-action one (the exporter's presets)."""
+    from veer import synth
+    d = tempfile.mkdtemp(prefix="vcb")
+    out = {}
+    for name in ("continuous", "small"):
+        path = os.path.join(d, f"{name}.veer")
+        synth.write_preset(path, name, rng_key=7)
+        out[name] = path
+    yield out
+    shutil.rmtree(d, ignore_errors=True)
+
+
+def free_port():
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+class Veerd:
+    """One veerd process. ``act`` / ``admin`` are its endpoints; ``stop()`` sends SIGTERM to its
+    pid and waits; ``kill()`` SIGKILL."""
+
+    def __init__(self, bundle, transport="ipc", extra=()):
+        self.dir = tempfile.mkdtemp(prefix="vcd")  # short: ipc paths are limited to ~100 bytes
+        if transport == "ipc":
+            self.act = f"ipc://{self.dir}/act"
+            self.admin = f"ipc://{self.dir}/admin"
+            events = f"ipc://{self.dir}/events"
+        else:
+            p = [free_port() for _ in range(3)]
+            self.act, self.admin = f"tcp://127.0.0.1:{p[0]}", f"tcp://127.0.0.1:{p[1]}"
+            events = f"tcp://127.0.0.1:{p[2]}"
+        self.log = open(os.path.join(self.dir, "veerd.log"), "w+")
+        self.proc = subprocess.Popen(
+            [VEERD, "--bundle", bundle, "--state-dir", os.path.join(self.dir, "state"),
+             "--act", self.act, "--admin", self.admin, "--events", events, *extra],
+            stdout=self.log, stderr=subprocess.STDOUT)
+        self.wait_ready()
+
+    def wait_ready(self, seconds=20.0):
+        from veer.client import Client, VeerTimeout
+        end = time.monotonic() + seconds
+        while time.monotonic() < end:
+            if self.proc.poll() is not None:
+                raise RuntimeError(f"veerd exited with {self.proc.returncode}:\n{self.output()}")
+            try:
+                with Client(act=self.act, admin=self.admin, timeout_s=0.5) as c:
+                    if c.status().ready:
+                        return
+            except VeerTimeout:
+                pass
+            time.sleep(0.05)
+        raise RuntimeError(f"veerd did not become ready in {seconds} s:\n{self.output()}")
+
+    def output(self):
+        self.log.flush()
+        self.log.seek(0)
+        return self.log.read()
+
+    def env(self):
+        e = dict(os.environ)
+        e.update(VEER_ACT=self.act, VEER_ADMIN=self.admin)
+        e.pop("VEER_SERVER_KEY", None)
+        e.pop("VEER_KEY", None)
+        return e
+
+    def stop(self):
+        if self.proc.poll() is None:
+            os.kill(self.proc.pid, signal.SIGCONT)  # in case a test left it stopped
+            os.kill(self.proc.pid, signal.SIGTERM)
+            try:
+                self.proc.wait(10)
+            except subprocess.TimeoutExpired:
+                os.kill(self.proc.pid, signal.SIGKILL)
+                self.proc.wait(10)
+        self.log.close()
+        shutil.rmtree(self.dir, ignore_errors=True)
+
+
+@pytest.fixture
+def veerd(bundles):
+    need_veerd()
+    d = Veerd(bundles["continuous"])
+    yield d
+    d.stop()
+
+
+@pytest.fixture
+def veerd_discrete_tcp(bundles):
+    need_veerd()
+    d = Veerd(bundles["small"], transport="tcp")
+    yield d
+    d.stop()
