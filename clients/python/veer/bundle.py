@@ -412,7 +412,8 @@ def build_model(layout: dict, weights: Mapping, training_states, *, reference_co
         "%Y-%m-%dT%H:%M:%SZ")
     m.provenance.source_digest = str(prov.get("source_digest") or weights_digest(weights))
     m.provenance.settings = str(prov.get("settings") or json.dumps(
-        {"reference_count": reference_count, "bins": bins, "cov_ridge": cov_ridge, "rng_key": rng_key,
+        {"reference_count": reference_count, "bins": bins, "rng_key": rng_key,
+         "cov_ridge": float(m.stats.cov_ridge) if with_stats else None,
          "training_states": int(states.shape[0])}, sort_keys=True))
     m.provenance.notes = str(prov.get("notes", ""))
     return m
