@@ -1,0 +1,23 @@
+/* Writing float32 arrays as NumPy .npy files (format version 1.0).
+ *
+ * Hand-written because Debian carries no maintained C library for .npy and the format is small:
+ * the magic "\x93NUMPY", version 1.0, a little-endian uint16 header length, an ASCII header dict
+ * {'descr': '<f4', 'fortran_order': False, 'shape': (...), } padded with spaces and a newline so
+ * the data starts on a 64-byte boundary, then the raw little-endian data in C order (NumPy's
+ * format description, numpy.lib.format). The file is written under a temporary name and renamed
+ * into place, so a reader never sees half a file.
+ */
+#ifndef VEER_DEMO_NPY_WRITE_H
+#define VEER_DEMO_NPY_WRITE_H
+
+#include <stddef.h>
+
+#include "veer/error.h"
+
+/* Writes `data` (rows × cols float32 in C order; cols 0 writes a 1-D array of `rows`) to `path`.
+ * Returns 0, or VEER_EIO with `err` naming the path and the system's reason. The caller owns
+ * `data`. */
+int veer_demo_npy_write_f32(const char *path, const float *data, size_t rows, size_t cols,
+                            veer_error *err);
+
+#endif
