@@ -1,0 +1,592 @@
+/* bench_runtime: libveer's speed and memory against floors measured in the same run.
+ *
+ *   bench_runtime SMALL.veer STANDARD.veer      (tests/bench/run_bench_runtime.sh makes both)
+ *
+ * Prints, in one run: the OpenBLAS kernel and the CPUs the thread ran on; single-state act
+ * latency p50/p99 for each bundle against the floor of the same layers as bare cblas calls;
+ * task encoding from 5,000 and 50,000 samples against the bare sgemm floor of B; and resident
+ * memory after loading the STANDARD bundle against its weights plus 16 MiB. Targets (issue 2):
+ * act <= 1.2x floor, encoding <= 1.2x floor, RSS <= 1.2x weights + 16 MiB.
+ *
+ * The floors are read from the bundle itself (decoded here with protobuf-c), so they always
+ * have the shapes of the model being measured:
+ *   act      every linear layer of F as one cblas call with the rows veer must compute: a
+ *            branch that reads the action runs once per action (sgemm, action_count rows), one
+ *            that does not runs once (sgemv), the head runs per action; then Q = F z (sgemv).
+ *            Continuous bundles: the actor's layers (sgemv) plus F at the chosen action.
+ *            No activations, no layer norm, no input assembly, no argmax: a true lower bound.
+ *   encode   every linear layer of B as sgemm over all samples, in the row-block size (256,
+ *            1024 or 4096 rows) that is fastest in this run.
+ * veer and its floor are timed in alternating rounds, so a burst of load from other users of
+ * the machine hits both alike. This is a measurement, not a test: it asserts nothing and
+ * always exits 0 after printing (2 on bad arguments or an unreadable bundle).
+ */
+#define _GNU_SOURCE
+#include <cblas.h>
+#include <math.h>
+#include <sched.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include "base/base.h"
+#include "runtime/bundle_io.h"
+#include "veer/runtime.h"
+
+#define MIB (1024.0 * 1024.0)
+
+/* ---- small utilities ----------------------------------------------------------------- */
+
+static long rss_kib(void)
+{
+    FILE *f = fopen("/proc/self/status", "r");
+    char line[256];
+    long kib = -1;
+    while (f != NULL && fgets(line, sizeof line, f) != NULL)
+        if (sscanf(line, "VmRSS: %ld kB", &kib) == 1)
+            break;
+    if (f != NULL)
+        fclose(f);
+    return kib;
+}
+
+static void load_average(char *out, size_t len)
+{
+    FILE *f = fopen("/proc/loadavg", "r");
+    out[0] = '\0';
+    if (f != NULL) {
+        if (fgets(out, (int)len, f) == NULL)
+            out[0] = '\0';
+        fclose(f);
+    }
+    out[strcspn(out, "\n")] = '\0';
+}
+
+static uint64_t rng_state = 0x9e3779b97f4a7c15ull;
+
+/* Uniform in [-1, 1): splitmix64, so every run draws the same inputs. */
+static float uniform(void)
+{
+    uint64_t z = (rng_state += 0x9e3779b97f4a7c15ull);
+    z = (z ^ (z >> 30)) * 0xbf58476d1ce4e5b9ull;
+    z = (z ^ (z >> 27)) * 0x94d049bb133111ebull;
+    z ^= z >> 31;
+    return (float)((double)(z >> 40) / (double)(1ull << 23)) - 1.0f;
+}
+
+static float *random_floats(size_t n)
+{
+    float *a = malloc(sizeof(float) * (n ? n : 1));
+    if (a == NULL) {
+        fprintf(stderr, "bench_runtime: out of memory\n");
+        exit(2);
+    }
+    for (size_t i = 0; i < n; i++)
+        a[i] = uniform();
+    return a;
+}
+
+static int cmp_u64(const void *a, const void *b)
+{
+    uint64_t x = *(const uint64_t *)a, y = *(const uint64_t *)b;
+    return x < y ? -1 : x > y;
+}
+
+static double percentile_us(uint64_t *ns, size_t n, double p)
+{
+    qsort(ns, n, sizeof *ns, cmp_u64);
+    size_t k = (size_t)ceil(p * (double)n) - 1;
+    return (double)ns[k < n ? k : n - 1] / 1e3;
+}
+
+static double median(double *v, size_t n)
+{
+    for (size_t i = 1; i < n; i++)
+        for (size_t j = i; j > 0 && v[j - 1] > v[j]; j--) {
+            double t = v[j];
+            v[j] = v[j - 1];
+            v[j - 1] = t;
+        }
+    return n % 2 ? v[n / 2] : 0.5 * (v[n / 2 - 1] + v[n / 2]);
+}
+
+/* The CPUs this thread was seen on, as a bit mask (sampled at every timed call). */
+static uint64_t cpus_seen;
+
+static void note_cpu(void)
+{
+    int c = sched_getcpu();
+    if (c >= 0 && c < 64)
+        cpus_seen |= 1ull << c;
+}
+
+/* ---- the bundle, decoded for its shapes and weights ----------------------------------- */
+
+typedef struct model_file {
+    uint8_t *data;
+    size_t len;
+    Veer__Bundle__BundleFile *frame;
+    Veer__Bundle__Model *model;
+} model_file;
+
+static int model_file_read(const char *path, model_file *mf)
+{
+    memset(mf, 0, sizeof *mf);
+    FILE *f = fopen(path, "rb");
+    if (f == NULL)
+        return -1;
+    fseek(f, 0, SEEK_END);
+    long len = ftell(f);
+    fseek(f, 0, SEEK_SET);
+    mf->data = malloc(len > 0 ? (size_t)len : 1);
+    if (mf->data == NULL || len <= VEER__BUNDLE_MAGIC_LEN ||
+        fread(mf->data, 1, (size_t)len, f) != (size_t)len) {
+        fclose(f);
+        return -1;
+    }
+    fclose(f);
+    mf->len = (size_t)len;
+    mf->frame = veer__bundle__bundle_file__unpack(NULL, mf->len - VEER__BUNDLE_MAGIC_LEN,
+                                                  mf->data + VEER__BUNDLE_MAGIC_LEN);
+    if (mf->frame == NULL)
+        return -1;
+    mf->model = veer__bundle__model__unpack(NULL, mf->frame->payload.len, mf->frame->payload.data);
+    return mf->model != NULL ? 0 : -1;
+}
+
+static void model_file_free(model_file *mf)
+{
+    if (mf->model != NULL)
+        veer__bundle__model__free_unpacked(mf->model, NULL);
+    if (mf->frame != NULL)
+        veer__bundle__bundle_file__free_unpacked(mf->frame, NULL);
+    free(mf->data);
+}
+
+static size_t layers_bytes(Veer__Bundle__Layer **layers, size_t n)
+{
+    size_t b = 0;
+    for (size_t i = 0; i < n; i++)
+        b += (layers[i]->n_weight + layers[i]->n_bias) * sizeof(float);
+    return b;
+}
+
+static size_t network_bytes(const Veer__Bundle__Network *net)
+{
+    if (net == NULL)
+        return 0;
+    size_t b = layers_bytes(net->head, net->n_head);
+    for (size_t i = 0; i < net->n_branches; i++)
+        b += layers_bytes(net->branches[i]->layers, net->branches[i]->n_layers);
+    return b;
+}
+
+static size_t weights_bytes(const Veer__Bundle__Model *m)
+{
+    return network_bytes(m->forward) + network_bytes(m->backward) + network_bytes(m->actor);
+}
+
+/* ---- floors: a network's linear layers as bare cblas calls ---------------------------- */
+
+typedef struct floor_op {
+    const float *w;
+    int rows, in, out;
+} floor_op;
+
+typedef struct floor_plan {
+    floor_op ops[64];
+    int n_ops;
+    float *x, *y; /* ping-pong activations, sized for the widest op */
+    size_t cap;
+} floor_plan;
+
+static int reads_action(const Veer__Bundle__Branch *br)
+{
+    for (size_t i = 0; i < br->n_inputs; i++)
+        if (br->inputs[i]->kind == VEER__BUNDLE__INPUT_KIND__INPUT_ACTION)
+            return 1;
+    return 0;
+}
+
+static void plan_layers(floor_plan *p, Veer__Bundle__Layer **layers, size_t n, int rows)
+{
+    for (size_t i = 0; i < n && p->n_ops < 64; i++) {
+        if (layers[i]->kind != VEER__BUNDLE__LAYER_KIND__LAYER_LINEAR)
+            continue;
+        floor_op *op = &p->ops[p->n_ops++];
+        op->w = layers[i]->weight;
+        op->rows = rows;
+        op->in = (int)layers[i]->in_dim;
+        op->out = (int)layers[i]->out_dim;
+    }
+}
+
+/* `action_rows`: rows for branches that read the action and for the head (when any branch
+ * does); `state_rows`: rows for the other branches. */
+static void plan_network(floor_plan *p, const Veer__Bundle__Network *net, int action_rows,
+                         int state_rows)
+{
+    int any_action = 0;
+    for (size_t i = 0; i < net->n_branches; i++) {
+        int ra = reads_action(net->branches[i]);
+        any_action |= ra;
+        plan_layers(p, net->branches[i]->layers, net->branches[i]->n_layers,
+                    ra ? action_rows : state_rows);
+    }
+    plan_layers(p, net->head, net->n_head, any_action ? action_rows : state_rows);
+}
+
+static void plan_finish(floor_plan *p)
+{
+    size_t cap = 1;
+    for (int i = 0; i < p->n_ops; i++) {
+        size_t a = (size_t)p->ops[i].rows *
+                   (size_t)(p->ops[i].in > p->ops[i].out ? p->ops[i].in : p->ops[i].out);
+        if (a > cap)
+            cap = a;
+    }
+    p->cap = cap;
+    p->x = random_floats(cap);
+    p->y = random_floats(cap);
+}
+
+static void plan_free(floor_plan *p)
+{
+    free(p->x);
+    free(p->y);
+}
+
+/* One pass of the floor: every op once, alternating buffers as a network's data would. */
+static void floor_run(floor_plan *p)
+{
+    float *x = p->x, *y = p->y;
+    for (int i = 0; i < p->n_ops; i++) {
+        const floor_op *op = &p->ops[i];
+        if (op->rows == 1)
+            cblas_sgemv(CblasRowMajor, CblasNoTrans, op->out, op->in, 1.0f, op->w, op->in, x, 1,
+                        0.0f, y, 1);
+        else
+            cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasTrans, op->rows, op->out, op->in, 1.0f, x,
+                        op->in, op->w, op->in, 0.0f, y, op->out);
+        float *t = x;
+        x = y;
+        y = t;
+    }
+}
+
+/* ---- act latency ------------------------------------------------------------------------ */
+
+typedef struct act_bench {
+    veer_workspace *ws;
+    const float *states; /* a pool of states to act on */
+    int pool;
+    int sdim, d, adim, actions;
+    const float *z;
+    floor_plan floor; /* F's (and the actor's) linear layers */
+    float *f_out;     /* actions x d, for the floor's Q = F z */
+} act_bench;
+
+static uint64_t time_veer_act(act_bench *a, int i)
+{
+    float action[16], value;
+    uint32_t flags;
+    const float *s = a->states + (size_t)(i % a->pool) * a->sdim;
+    uint64_t t0 = veer__now_ns();
+    veer_act(a->ws, s, a->z, action, &value, &flags);
+    return veer__now_ns() - t0;
+}
+
+static uint64_t time_floor_act(act_bench *a)
+{
+    uint64_t t0 = veer__now_ns();
+    floor_run(&a->floor);
+    cblas_sgemv(CblasRowMajor, CblasNoTrans, a->actions, a->d, 1.0f, a->f_out, a->d, a->z, 1, 0.0f,
+                a->floor.y, 1);
+    return veer__now_ns() - t0;
+}
+
+static void bench_act(const char *label, const veer_bundle *bundle, const Veer__Bundle__Model *m,
+                      const float *z)
+{
+    const veer_model_info *info = veer_bundle_info(bundle);
+    act_bench a;
+    memset(&a, 0, sizeof a);
+    veer_error err;
+    if (veer_workspace_create(bundle, 1, &a.ws, &err) != 0) {
+        printf("  %s: workspace: %s\n", label, err.message);
+        return;
+    }
+    a.sdim = (int)info->state_dim;
+    a.d = (int)info->z_dim;
+    a.z = z;
+    a.pool = 64;
+    float *states = random_floats((size_t)a.pool * a.sdim);
+    a.states = states;
+    if (info->action_kind == VEER_ACTION_DISCRETE) {
+        a.actions = (int)info->action_count;
+        plan_network(&a.floor, m->forward, a.actions, 1);
+    } else {
+        a.actions = 1;
+        plan_network(&a.floor, m->actor, 1, 1);
+        plan_network(&a.floor, m->forward, 1, 1);
+    }
+    plan_finish(&a.floor);
+    a.f_out = random_floats((size_t)a.actions * a.d);
+
+    /* Warm up both (caches, OpenBLAS's buffers, page faults), then size the rounds so each
+     * side gets about 2.5 s, within [400, 20000] calls. */
+    uint64_t warm = veer__now_ns();
+    int w = 0;
+    for (; w < 200 || veer__now_ns() - warm < 300000000ull; w++) {
+        time_veer_act(&a, w);
+        time_floor_act(&a);
+        if (w >= 20000)
+            break;
+    }
+    double per_pair_ns = (double)(veer__now_ns() - warm) / w;
+    int total = (int)(5e9 / per_pair_ns);
+    total = total < 400 ? 400 : total > 20000 ? 20000 : total;
+    int rounds = 20, per_round = (total + rounds - 1) / rounds;
+    total = rounds * per_round;
+
+    uint64_t *tv = malloc(sizeof(uint64_t) * total), *tf = malloc(sizeof(uint64_t) * total);
+    int k = 0;
+    for (int r = 0; r < rounds; r++) {
+        for (int i = 0; i < per_round; i++) {
+            tv[k + i] = time_veer_act(&a, k + i);
+            if ((i & 63) == 0)
+                note_cpu();
+        }
+        for (int i = 0; i < per_round; i++)
+            tf[k + i] = time_floor_act(&a);
+        k += per_round;
+    }
+    double v50 = percentile_us(tv, (size_t)total, 0.50),
+           v99 = percentile_us(tv, (size_t)total, 0.99);
+    double f50 = percentile_us(tf, (size_t)total, 0.50),
+           f99 = percentile_us(tf, (size_t)total, 0.99);
+    printf("  %-9s veer p50 %9.2f us  p99 %9.2f us | floor p50 %9.2f us  p99 %9.2f us | "
+           "ratio p50 %.2fx  p99 %.2fx  (%d calls each, %d linear ops in the floor)\n",
+           label, v50, v99, f50, f99, v50 / f50, v99 / f99, total, a.floor.n_ops);
+    free(tv);
+    free(tf);
+    free(states);
+    free(a.f_out);
+    plan_free(&a.floor);
+    veer_workspace_destroy(a.ws);
+}
+
+/* ---- task encoding ------------------------------------------------------------------- */
+
+/* The floor's input is random: only the shapes matter to sgemm. */
+static double floor_encode_s(const Veer__Bundle__Model *m, int n, int block)
+{
+    floor_plan p;
+    memset(&p, 0, sizeof p);
+    plan_network(&p, m->backward, block, block);
+    plan_finish(&p);
+    uint64_t t0 = veer__now_ns();
+    for (int off = 0; off < n; off += block) {
+        int rows = n - off < block ? n - off : block;
+        for (int i = 0; i < p.n_ops; i++)
+            p.ops[i].rows = rows;
+        floor_run(&p);
+    }
+    double s = (double)(veer__now_ns() - t0) / 1e9;
+    plan_free(&p);
+    return s;
+}
+
+static double veer_encode_s(const veer_bundle *bundle, const float *states, const float *r, int n,
+                            int with_report, int *rc_out)
+{
+    veer_task_spec spec;
+    veer_task_spec_init(&spec, VEER_TASK_SAMPLES);
+    spec.count = (uint32_t)n;
+    spec.states = states;
+    spec.values = r;
+    float z[1024];
+    veer_task_report rep;
+    uint64_t t0 = veer__now_ns();
+    *rc_out = veer_task_encode(bundle, &spec, z, with_report ? &rep : NULL, NULL);
+    return (double)(veer__now_ns() - t0) / 1e9;
+}
+
+static void bench_encode(const char *label, const veer_bundle *bundle, const Veer__Bundle__Model *m,
+                         int n)
+{
+    const veer_model_info *info = veer_bundle_info(bundle);
+    float *states = random_floats((size_t)n * info->state_dim);
+    float *r = random_floats((size_t)n);
+    static const int blocks[3] = {256, 1024, 4096};
+
+    /* One untimed pass of veer warms caches and OpenBLAS; the floor's row-block size is the
+     * fastest of three on (up to) 8,192 rows. Then veer (with and without the R² fit) and the
+     * floor alternate, for at least 3 rounds and about 3 s per side. */
+    int rc = 0;
+    veer_encode_s(bundle, states, r, n, 1, &rc);
+    if (rc != 0) {
+        printf("  %-9s n=%-6d encode failed: %s\n", label, n, veer_strerror(rc));
+        goto out;
+    }
+    int block = blocks[0];
+    double best = 1e30;
+    for (int b = 0; b < 3; b++) {
+        double s = floor_encode_s(m, n < 8192 ? n : 8192, blocks[b]);
+        if (s < best) {
+            best = s;
+            block = blocks[b];
+        }
+    }
+    double probe = floor_encode_s(m, n, block);
+    int reps = (int)(3.0 / (probe > 1e-4 ? probe : 1e-4));
+    reps = reps < 3 ? 3 : reps > 50 ? 50 : reps;
+    double tv[50], tn[50], tf[50];
+    for (int k = 0; k < reps; k++) {
+        tv[k] = veer_encode_s(bundle, states, r, n, 1, &rc);
+        tn[k] = veer_encode_s(bundle, states, r, n, 0, &rc);
+        tf[k] = floor_encode_s(m, n, block);
+        note_cpu();
+    }
+    double v = median(tv, (size_t)reps), vn = median(tn, (size_t)reps),
+           f = median(tf, (size_t)reps);
+    printf("  %-9s n=%-6d veer %8.2f ms (with R2) %8.2f ms (no report) | floor %8.2f ms | "
+           "ratio %.2fx / %.2fx  (median of %d; floor blocks of %d rows)\n",
+           label, n, v * 1e3, vn * 1e3, f * 1e3, v / f, vn / f, reps, block);
+out:
+    free(states);
+    free(r);
+}
+
+/* ---- main ------------------------------------------------------------------------------- */
+
+/* A task vector for acting: rewards over the reference set when the bundle has one. */
+static int make_task(const veer_bundle *bundle, float *z)
+{
+    const veer_model_info *info = veer_bundle_info(bundle);
+    veer_task_spec spec;
+    float *r = NULL, *s = NULL;
+    if (info->reference_count > 0) {
+        veer_task_spec_init(&spec, VEER_TASK_REFERENCE);
+        spec.count = info->reference_count;
+        r = random_floats(spec.count);
+    } else {
+        veer_task_spec_init(&spec, VEER_TASK_GOALS);
+        spec.count = 1;
+        s = random_floats(info->state_dim);
+        r = random_floats(1);
+        r[0] = 1.0f;
+        spec.states = s;
+    }
+    spec.values = r;
+    veer_error err;
+    int rc = veer_task_encode(bundle, &spec, z, NULL, &err);
+    if (rc != 0)
+        fprintf(stderr, "bench_runtime: encoding a task: %s: %s\n", err.field, err.message);
+    free(r);
+    free(s);
+    return rc;
+}
+
+int main(int argc, char **argv)
+{
+    if (argc != 3) {
+        fprintf(stderr, "usage: bench_runtime SMALL.veer STANDARD.veer\n");
+        return 2;
+    }
+    const char *paths[2] = {argv[1], argv[2]};
+    const char *labels[2] = {"SMALL", "STANDARD"};
+    veer_blas_threads(1);
+    char load[128];
+    load_average(load, sizeof load);
+    long rss_start = rss_kib();
+    note_cpu();
+
+    /* Memory first, with only the STANDARD bundle open: open, one workspace, one act. */
+    veer_bundle *bundles[2] = {NULL, NULL};
+    veer_error err;
+    float *zs[2];
+    if (veer_bundle_open(paths[1], &bundles[1], &err) != 0) {
+        fprintf(stderr, "bench_runtime: %s: %s: %s\n", paths[1], err.field, err.message);
+        return 2;
+    }
+    zs[1] = calloc(veer_bundle_info(bundles[1])->z_dim, sizeof(float));
+    if (make_task(bundles[1], zs[1]) != 0)
+        return 2;
+    {
+        veer_workspace *ws = NULL;
+        if (veer_workspace_create(bundles[1], 1, &ws, &err) != 0) {
+            fprintf(stderr, "bench_runtime: workspace: %s\n", err.message);
+            return 2;
+        }
+        float *s = random_floats(veer_bundle_info(bundles[1])->state_dim), action[16];
+        veer_act(ws, s, zs[1], action, NULL, NULL);
+        free(s);
+        veer_workspace_destroy(ws);
+    }
+    long rss_loaded = rss_kib();
+
+    model_file files[2];
+    for (int i = 0; i < 2; i++) {
+        if (model_file_read(paths[i], &files[i]) != 0) {
+            fprintf(stderr, "bench_runtime: %s: cannot decode the bundle\n", paths[i]);
+            return 2;
+        }
+    }
+    if (veer_bundle_open(paths[0], &bundles[0], &err) != 0) {
+        fprintf(stderr, "bench_runtime: %s: %s: %s\n", paths[0], err.field, err.message);
+        return 2;
+    }
+    zs[0] = calloc(veer_bundle_info(bundles[0])->z_dim, sizeof(float));
+    if (make_task(bundles[0], zs[0]) != 0)
+        return 2;
+
+    printf("bench_runtime: libveer against bare-cblas floors, one OpenBLAS thread\n");
+    printf("  OpenBLAS kernel: %s; config: %s\n", veer_blas_kernel(), openblas_get_config());
+    printf("  load average at start: %s (a shared machine: figures vary with other users' load)\n",
+           load);
+    for (int i = 0; i < 2; i++) {
+        const veer_model_info *info = veer_bundle_info(bundles[i]);
+        printf("  %-9s %s: %u features, d=%u, %u actions, weights %.2f MiB\n", labels[i],
+               info->model_version, info->state_dim, info->z_dim, info->action_count,
+               (double)weights_bytes(files[i].model) / MIB);
+    }
+
+    printf("\nresident memory (VmRSS, /proc/self/status), STANDARD bundle open + 1 workspace:\n");
+    double weights = (double)weights_bytes(files[1].model);
+    double limit = 1.2 * weights + 16 * MIB;
+    double rss = (double)rss_loaded * 1024.0;
+    printf("  RSS at start %.1f MiB, after loading %.1f MiB (bundle's own memory %.1f MiB)\n",
+           (double)rss_start / 1024.0, rss / MIB, (double)veer_bundle_memory(bundles[1]) / MIB);
+    printf("  weights %.1f MiB; target 1.2 x weights + 16 MiB = %.1f MiB; RSS / target = %.2f\n",
+           weights / MIB, limit / MIB, rss / limit);
+
+    printf("\nsingle-state act latency (veer_act vs F's linear layers as bare cblas calls):\n");
+    for (int i = 0; i < 2; i++)
+        bench_act(labels[i], bundles[i], files[i].model, zs[i]);
+
+    printf("\ntask encoding from reward samples (veer_task_encode vs B's linear layers as "
+           "bare sgemm):\n");
+    static const int counts[2] = {5000, 50000};
+    for (int i = 0; i < 2; i++)
+        for (int c = 0; c < 2; c++)
+            bench_encode(labels[i], bundles[i], files[i].model, counts[c]);
+
+    char cpus[256] = "";
+    for (int c = 0; c < 64; c++)
+        if (cpus_seen & (1ull << c))
+            snprintf(cpus + strlen(cpus), sizeof cpus - strlen(cpus), "%s%d", cpus[0] ? "," : "",
+                     c);
+    load_average(load, sizeof load);
+    printf("\n  the thread ran on CPU(s) %s (sched_getcpu, sampled; not pinned); load average at "
+           "end: %s\n",
+           cpus, load);
+    printf("  targets: act <= 1.2x floor, encoding <= 1.2x floor, RSS <= 1.2x weights + 16 MiB\n");
+
+    for (int i = 0; i < 2; i++) {
+        veer_bundle_close(bundles[i]);
+        model_file_free(&files[i]);
+        free(zs[i]);
+    }
+    return 0;
+}

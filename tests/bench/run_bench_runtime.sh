@@ -1,0 +1,16 @@
+#!/bin/sh
+# Makes the SMALL and STANDARD random-weight bundles with the Python exporter (veer.synth
+# presets) and runs bench_runtime on them.   Usage: run_bench_runtime.sh [BUILD_DIR]
+set -eu
+here=$(cd "$(dirname "$0")" && pwd)
+src=$(cd "$here/../.." && pwd)
+build=$(cd "${1:-$src/build}" && pwd)
+out="$build/bench"
+mkdir -p "$out"
+export PYTHONPATH="$build/python:$src/clients/python"
+for preset in small standard; do
+    if [ ! -s "$out/$preset.veer" ]; then
+        /usr/bin/python3 -m veer.bundle random --preset "$preset" --rng-key 1 -o "$out/$preset.veer"
+    fi
+done
+exec "$build/bin/bench_runtime" "$out/small.veer" "$out/standard.veer"
