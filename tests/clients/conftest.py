@@ -48,7 +48,8 @@ class Veerd:
     """One veerd process. ``act`` / ``admin`` are its endpoints; ``stop()`` sends SIGTERM to its
     pid and waits; ``kill()`` SIGKILL."""
 
-    def __init__(self, bundle, transport="ipc", extra=()):
+    def __init__(self, bundle, transport="ipc", extra=(), ready_keys=None):
+        self.ready_keys = ready_keys or {}
         self.dir = tempfile.mkdtemp(prefix="vcd")  # short: ipc paths are limited to ~100 bytes
         if transport == "ipc":
             self.act = f"ipc://{self.dir}/act"
@@ -72,7 +73,8 @@ class Veerd:
             if self.proc.poll() is not None:
                 raise RuntimeError(f"veerd exited with {self.proc.returncode}:\n{self.output()}")
             try:
-                with Client(act=self.act, admin=self.admin, timeout_s=0.5) as c:
+                with Client(act=self.act, admin=self.admin, timeout_s=0.5,
+                            **self.ready_keys) as c:
                     if c.status().ready:
                         return
             except VeerTimeout:
