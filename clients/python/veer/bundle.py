@@ -429,8 +429,16 @@ def export_bundle(path: str, layout: dict, weights: Mapping, training_states, **
 # ---- the reader ------------------------------------------------------------------------------
 
 def _arr(values, shape=None) -> np.ndarray:
+    """A float32 array, shaped when its size fits `shape`, else left flat: the reader shows
+    damaged content as it is, and leaves judging it to libveer's validator."""
     a = np.array(values, dtype=np.float32)
-    return a.reshape(shape) if shape is not None else a
+    if shape is None:
+        return a
+    known = int(np.prod([d for d in shape if d != -1]))
+    if known == 0:
+        return a
+    fits = a.size % known == 0 if -1 in shape else a.size == known
+    return a.reshape(shape) if fits else a
 
 
 def _layer_view(layer) -> ref.LayerSpec:
@@ -487,12 +495,11 @@ class Bundle:
         self.arrays = {
             "fallback_action": _arr(model.fallback_action),
             "stats.mean": _arr(st.mean),
-            "stats.cov": _arr(st.cov, (s, s) if len(st.cov) == s * s else None),
-            "stats.quantile_edges": _arr(st.quantile_edges,
-                                         (s, -1) if len(st.quantile_edges) else None),
-            "reference.states": _arr(model.reference.states, (-1, s) if s else None),
-            "reference.b": _arr(model.reference.b, (-1, d) if d else None),
-            "cov_b": _arr(model.cov_b, (d, d) if len(model.cov_b) == d * d else None),
+            "stats.cov": _arr(st.cov, (s, s)),
+            "stats.quantile_edges": _arr(st.quantile_edges, (s, -1)),
+            "reference.states": _arr(model.reference.states, (-1, s)),
+            "reference.b": _arr(model.reference.b, (-1, d)),
+            "cov_b": _arr(model.cov_b, (d, d)),
         }
 
     # The reference forward pass on this bundle (veer.reference).
