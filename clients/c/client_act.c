@@ -16,6 +16,8 @@
 #include <string.h>
 #include <zmq.h>
 
+#define VEER__CLIENT_WAKE_SLACK_NS 60000u
+
 void veer_client_act_stats_get(const veer_client *c, veer_client_act_stats *out)
 {
     *out = c->stats;
@@ -72,6 +74,12 @@ int veer_client_act(veer_client *c, const char *channel, const float *state,
     if (deadline_us == 0)
         deadline_us = c->model.default_deadline_us ? c->model.default_deadline_us : 1000u;
     uint64_t deadline = t0 + (uint64_t)deadline_us * 1000u;
+    /* Linux lets a sleeping thread wake up to its timer slack (50 µs by default) late, so the
+     * wait ends that much before the deadline: giving up a little early is harmless, handing
+     * the controller its fallback late is not. Short deadlines keep nine tenths of their time. */
+    uint64_t slack = (uint64_t)deadline_us * 100u;
+    if (slack > VEER__CLIENT_WAKE_SLACK_NS)
+        slack = VEER__CLIENT_WAKE_SLACK_NS;
 
     Veer__Wire__ActRequest a = VEER__WIRE__ACT_REQUEST__INIT;
     a.channel = (char *)channel;
@@ -141,9 +149,9 @@ int veer_client_act(veer_client *c, const char *channel, const float *state,
             continue;
         }
         uint64_t now = veer__now_ns();
-        if (now >= deadline)
+        if (now + slack >= deadline)
             break;
-        uint64_t left = deadline - now;
+        uint64_t left = deadline - slack - now;
         struct timespec ts = {(time_t)(left / 1000000000u), (long)(left % 1000000000u)};
         struct pollfd pfd = {c->act_fd, POLLIN, 0};
         ppoll(&pfd, 1, &ts, NULL);

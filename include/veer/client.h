@@ -8,7 +8,9 @@
  * (ppoll on ZeroMQ's notification descriptor, microsecond resolution) only until the deadline.
  * When no reply has arrived by then it writes the model's fallback action, learnt from a
  * describe request when the client opened, sets VEER_ACT_FALLBACK | VEER_ACT_DEADLINE and
- * returns 0: it never blocks past the deadline. A reply that arrives later carries an older
+ * returns 0: it never waits past the deadline. (It stops waiting up to 60 µs early to absorb
+ * the kernel's timer slack; how soon the thread runs again after that is the scheduler's
+ * business: run a controller thread with a real-time policy for hard bounds.) A reply that arrives later carries an older
  * sequence number and is thrown away by the next call. An act call allocates nothing in this
  * library: the request is packed into a buffer sized at open, the reply is received into a
  * fixed buffer and unpacked with a bump allocator over a fixed arena. (libzmq itself copies

@@ -16,7 +16,7 @@ import pytest
 
 from conftest import VEER
 from veer.bundle import read_bundle
-from veer.client import Client, VeerError, FALLBACK, DEADLINE
+from veer.client import Client, VeerError, FALLBACK
 
 REFUSED, USAGE, INPUT = 1, 2, 3
 
