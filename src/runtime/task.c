@@ -188,21 +188,24 @@ static int task_check_inputs(const veer_model_info *info, const veer_task_spec *
 
 /* The fit of y on [B, 1] as a running QR of the augmented matrix [B, 1, y]: its R factor
  * holds everything a least-squares solution needs, and its last diagonal entry is the norm
- * of the part of y that no combination of the columns reaches. */
+ * of the part of y that no combination of the columns reaches. Each chunk updates R with
+ * LAPACK's triangular-pentagonal QR (dtpqrt: R stacked on a dense block, the update step of a
+ * tall-skinny QR), which never re-factorises the rows R already summarises. */
 typedef struct task_fit {
     uint32_t d;    /* z_dim */
     uint32_t cols; /* d + 2 */
-    uint32_t lda;  /* cols + chunk rows */
-    double *a;     /* lda x cols, column-major; the top cols rows hold R between chunks */
-    double *tau;
-    double *work;
-    lapack_int lwork;
+    uint32_t nb;   /* dtpqrt's block size */
+    double *r;     /* cols x cols, column-major, upper triangular */
+    double *block; /* chunk x cols, column-major: the rows being added */
+    double *t;     /* nb x cols: dtpqrt's block reflector factors (discarded) */
+    double *work;  /* nb x cols */
 } task_fit;
 
 static void task_fit_free(task_fit *f)
 {
-    veer__free(f->a);
-    veer__free(f->tau);
+    veer__free(f->r);
+    veer__free(f->block);
+    veer__free(f->t);
     veer__free(f->work);
 }
 
@@ -211,46 +214,39 @@ static int task_fit_init(task_fit *f, uint32_t d, veer_error *err)
     memset(f, 0, sizeof *f);
     f->d = d;
     f->cols = d + 2;
-    f->lda = f->cols + VEER__TASK_CHUNK;
-    f->a = veer__calloc((size_t)f->lda * f->cols, sizeof(double));
-    f->tau = veer__malloc(sizeof(double) * f->cols);
-    double query = 0;
-    if (f->a != NULL && f->tau != NULL &&
-        LAPACKE_dgeqrf_work(LAPACK_COL_MAJOR, (lapack_int)f->lda, (lapack_int)f->cols, f->a,
-                            (lapack_int)f->lda, f->tau, &query, -1) == 0) {
-        f->lwork =
-            (lapack_int)query > (lapack_int)f->cols ? (lapack_int)query : (lapack_int)f->cols;
-        f->work = veer__malloc(sizeof(double) * (size_t)f->lwork);
-    }
-    if (f->work == NULL) {
+    /* A small block measured fastest here (2-3x over 32 for d = 32 and d = 100): the update's
+     * cost is in its panels, and narrow panels stay in cache. */
+    f->nb = f->cols < 8 ? f->cols : 8;
+    f->r = veer__calloc((size_t)f->cols * f->cols, sizeof(double));
+    f->block = veer__malloc(sizeof(double) * VEER__TASK_CHUNK * f->cols);
+    f->t = veer__malloc(sizeof(double) * f->nb * f->cols);
+    f->work = veer__malloc(sizeof(double) * f->nb * f->cols);
+    if (f->r == NULL || f->block == NULL || f->t == NULL || f->work == NULL) {
         task_fit_free(f);
         return veer__error_set(err, VEER_ENOMEM, "task", "no memory for the expressiveness fit");
     }
     return 0;
 }
 
-/* Stacks `rows` rows of B (row-major, d wide) and their centred values y under R and
- * re-factorises. */
+/* Adds `rows` rows of B (row-major, d wide) and their centred values y to the fit. */
 static void task_fit_add(task_fit *f, const float *b, const double *y, uint32_t rows)
 {
-    uint32_t d = f->d, top = f->cols;
+    uint32_t d = f->d;
+    size_t ld = VEER__TASK_CHUNK;
     for (uint32_t j = 0; j < d; j++) {
-        double *col = f->a + (size_t)j * f->lda + top;
+        double *col = f->block + (size_t)j * ld;
         for (uint32_t i = 0; i < rows; i++)
             col[i] = b[(size_t)i * d + j];
     }
-    double *ones = f->a + (size_t)d * f->lda + top, *ys = ones + f->lda;
+    double *ones = f->block + (size_t)d * ld, *ys = ones + ld;
     for (uint32_t i = 0; i < rows; i++) {
         ones[i] = 1.0;
         ys[i] = y[i];
     }
-    /* With m >= n dgeqrf cannot fail on finite input; the inputs were checked finite. */
-    LAPACKE_dgeqrf_work(LAPACK_COL_MAJOR, (lapack_int)(top + rows), (lapack_int)f->cols, f->a,
-                        (lapack_int)f->lda, f->tau, f->work, f->lwork);
-    /* Keep only R on top: below its diagonal dgeqrf left Householder vectors. */
-    for (uint32_t j = 0; j < f->cols; j++)
-        for (uint32_t i = j + 1; i < top; i++)
-            f->a[(size_t)j * f->lda + i] = 0;
+    /* dtpqrt fails only on bad arguments, and these are fixed by construction. */
+    LAPACKE_dtpqrt_work(LAPACK_COL_MAJOR, (lapack_int)rows, (lapack_int)f->cols, 0,
+                        (lapack_int)f->nb, f->r, (lapack_int)f->cols, f->block, (lapack_int)ld,
+                        f->t, (lapack_int)f->nb, f->work);
 }
 
 /* R² = 1 - RSS / TSS. RSS is the squared tail of y beyond the columns, plus what remains of
@@ -259,8 +255,8 @@ static void task_fit_add(task_fit *f, const float *b, const double *y, uint32_t 
 static int task_fit_r2(task_fit *f, uint32_t n, double tss, double *r2, veer_error *err)
 {
     lapack_int p = (lapack_int)f->d + 1;
-    const double *a = f->a;
-    size_t lda = f->lda;
+    const double *a = f->r;
+    size_t lda = f->cols;
     double tail = a[(size_t)p * lda + (size_t)p];
     double *r11 = veer__calloc((size_t)p * (size_t)p, sizeof(double));
     double *c = veer__malloc(sizeof(double) * (size_t)p);
