@@ -221,3 +221,27 @@ def test_reference_policies_by_hand():
                                           np.array([[-1.0, 0, 3]]), np.ones((1, 3)), True)
     np.testing.assert_allclose(a, [[0, 0, 1]])
     assert clipped[0] and v[0] == 1.0
+
+
+def test_benchmark_presets_have_the_issue_sizes(tmp_path):
+    """SMALL and STANDARD as issue 2 defines them, written through the command line."""
+    def linear_outs(layers):
+        return [L.out_dim for L in layers if L.kind == vb.pb.LAYER_LINEAR]
+
+    for preset in ("small", "standard"):
+        path = tmp_path / f"{preset}.veer"
+        subprocess.run([sys.executable, "-m", "veer.bundle", "random", "--preset", preset, "-o",
+                        str(path)], check=True, capture_output=True)
+        m = vb.read_bundle(str(path)).model
+        assert m.state_dim == 24 and m.action.kind == vb.pb.ACTION_DISCRETE
+        assert m.action.count == 6
+        f, b = m.forward, m.backward
+        if preset == "small":
+            assert m.z_dim == 32
+            assert linear_outs(f.branches[0].layers) + linear_outs(f.head) == [256, 256, 32]
+            assert linear_outs(b.branches[0].layers) == [256, 256, 32]
+        else:
+            assert m.z_dim == 100 and len(f.branches) == 2
+            assert [linear_outs(br.layers) for br in f.branches] == [[1024], [1024]]
+            assert linear_outs(f.head) == [1024, 1024, 100]
+            assert linear_outs(b.branches[0].layers) == [1024, 1024, 100]
