@@ -245,3 +245,15 @@ def test_benchmark_presets_have_the_issue_sizes(tmp_path):
             assert [linear_outs(br.layers) for br in f.branches] == [[1024], [1024]]
             assert linear_outs(f.head) == [1024, 1024, 100]
             assert linear_outs(b.branches[0].layers) == [1024, 1024, 100]
+
+
+def test_readme_example_runs(tmp_path):
+    """The export example in clients/python/README.md runs as written."""
+    import re
+    here = os.path.dirname(os.path.abspath(__file__))
+    with open(os.path.join(here, "..", "..", "clients", "python", "README.md")) as f:
+        code = re.search(r"```python\n(.*?)```", f.read(), re.S).group(1)
+    (tmp_path / "example.py").write_text(code)
+    subprocess.run([sys.executable, "example.py"], cwd=tmp_path, check=True, capture_output=True)
+    b = vb.read_bundle(str(tmp_path / "sorter.veer"))
+    assert b.b_features() == [0, 1] and b.model.reference.count == 256
