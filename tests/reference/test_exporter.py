@@ -254,6 +254,9 @@ def test_readme_example_runs(tmp_path):
     with open(os.path.join(here, "..", "..", "clients", "python", "README.md")) as f:
         code = re.search(r"```python\n(.*?)```", f.read(), re.S).group(1)
     (tmp_path / "example.py").write_text(code)
-    subprocess.run([sys.executable, "example.py"], cwd=tmp_path, check=True, capture_output=True)
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join(
+        os.path.abspath(p) for p in os.environ.get("PYTHONPATH", "").split(os.pathsep) if p))
+    subprocess.run([sys.executable, "example.py"], cwd=tmp_path, check=True, capture_output=True,
+                   env=env)
     b = vb.read_bundle(str(tmp_path / "sorter.veer"))
     assert b.b_features() == [0, 1] and b.model.reference.count == 256
