@@ -448,11 +448,15 @@ static void bench_encode(const char *label, const veer_bundle *bundle, const Vee
         tf[k] = floor_encode_s(m, n, block);
         note_cpu();
     }
+    /* median() sorts, so the minimum is element 0 afterwards. The minimum is the run least
+     * disturbed by other users of the machine; the median is the typical one. */
     double v = median(tv, (size_t)reps), vn = median(tn, (size_t)reps),
            f = median(tf, (size_t)reps);
     printf("  %-9s n=%-6d veer %8.2f ms (with R2) %8.2f ms (no report) | floor %8.2f ms | "
-           "ratio %.2fx / %.2fx  (median of %d; floor blocks of %d rows)\n",
-           label, n, v * 1e3, vn * 1e3, f * 1e3, v / f, vn / f, reps, block);
+           "ratio %.2fx / %.2fx (medians of %d), %.2fx / %.2fx (minima); floor blocks of %d "
+           "rows\n",
+           label, n, v * 1e3, vn * 1e3, f * 1e3, v / f, vn / f, reps, tv[0] / tf[0], tn[0] / tf[0],
+           block);
 out:
     free(states);
     free(r);
