@@ -4,9 +4,9 @@
  * The key choice is streaming. States go through B in fixed-size chunks (one batched call, so
  * one sgemm per layer), and each chunk is folded into running sums at once: the weighted sum
  * Σ r_i B(s_i) as a gemv, the second moment Σ B Bᵀ for the covariance correction as a syrk, and
- * the least-squares fit behind the expressiveness R² as a streaming QR (each chunk is stacked
- * under the R factor so far and re-factorised). Scratch memory is therefore fixed by the chunk
- * size and z_dim, whatever the number of samples. Everything that feeds a solve or a fit is
+ * the least-squares fit behind the expressiveness R² as a streaming QR (LAPACK's dtpqrt folds
+ * each chunk into the R factor so far). Scratch memory is therefore fixed by the chunk size and
+ * z_dim, whatever the number of samples. Everything that feeds a solve or a fit is
  * accumulated in double precision, and LAPACK is called through its _work entry points so that
  * every allocation goes through veer's hook.
  *
