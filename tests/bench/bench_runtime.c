@@ -506,10 +506,12 @@ int main(int argc, char **argv)
     long rss_start = rss_kib();
     note_cpu();
 
-    /* Memory first, with only the STANDARD bundle open: open, one workspace, one act. */
+    /* Memory first, with only the STANDARD bundle open: open, encode a task, one workspace,
+     * one act, and read VmRSS while the workspace is alive (a service always holds one). */
     veer_bundle *bundles[2] = {NULL, NULL};
     veer_error err;
     float *zs[2];
+    long rss_loaded = -1;
     if (veer_bundle_open(paths[1], &bundles[1], &err) != 0) {
         fprintf(stderr, "bench_runtime: %s: %s: %s\n", paths[1], err.field, err.message);
         return 2;
@@ -525,10 +527,10 @@ int main(int argc, char **argv)
         }
         float *s = random_floats(veer_bundle_info(bundles[1])->state_dim), action[16];
         veer_act(ws, s, zs[1], action, NULL, NULL);
+        rss_loaded = rss_kib();
         free(s);
         veer_workspace_destroy(ws);
     }
-    long rss_loaded = rss_kib();
 
     model_file files[2];
     for (int i = 0; i < 2; i++) {

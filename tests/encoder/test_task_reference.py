@@ -84,6 +84,8 @@ LAYOUTS = {
     "subset_ln": lambda: synth.make_layout(kind="continuous", state_dim=9, z_dim=12,
                                            hidden=[48, 32], action_dim=2,
                                            b_features=[0, 2, 3, 7], layer_norm=True),
+    # The benchmark's SMALL preset: 24 features, d = 32, hidden 256 x 2.
+    "small_preset": lambda: synth.preset_layout("small"),
     # No rescale layer at the end of B, so B's norm varies from state to state.
     "raw_b": lambda: synth.make_layout(kind="discrete", state_dim=6, z_dim=8, hidden=[32, 32],
                                        action_count=3, rescale_b=False),
