@@ -1,0 +1,324 @@
+/* The act thread (see act.h for the contract).
+ *
+ * Memory is sized once in veer__act_start from the model: the decoding arena (16 bytes of
+ * arena per byte of the largest request, room for protobuf-c's structs and unknown-field
+ * records), the reply buffer (the largest Reply an Act or Describe can produce, plus an Error),
+ * the action vector, the workspace. The running p99 of policy time comes from two alternating
+ * windows of the monitor's log-linear histogram: the estimate is the p99 of the last full
+ * window of 1024 policy evaluations, so it follows load changes within about a second at 1 kHz
+ * and costs one histogram record per act plus one percentile scan per window. */
+#include "service/act.h"
+
+#include <errno.h>
+#include <math.h>
+#include <pthread.h>
+#include <stdio.h>
+#include <string.h>
+
+#include "base/base.h"
+#include "service/arena.h"
+#include "service/auth.h"
+#include "service/wire.h"
+#include "veer/histogram.h"
+
+#define ACT_RECV_TIMEOUT_MS 50 /* how often an idle thread checks for stop and announces quiescence */
+#define POLICY_WINDOW 1024u
+
+struct veer__act {
+    veer__act_config cfg;
+    const veer_model_info *info;
+    void *socket;
+    pthread_t thread;
+    int thread_started;
+    atomic_int stop;
+
+    veer_workspace *ws;
+    veer__arena arena;
+    veer__wire_msg msg;
+    uint8_t *reply_buf;
+    size_t reply_cap;
+    float *action;
+    char **feature_scratch;
+
+    veer_hist *window[2];
+    int current;
+    uint32_t in_window;
+    uint64_t policy_p99_ns; /* 0 until the first window is full */
+
+    _Atomic uint64_t acts, fallbacks, deadline_misses, errors, no_task;
+};
+
+static void count(_Atomic uint64_t *c) { atomic_fetch_add_explicit(c, 1, memory_order_relaxed); }
+
+static void record_policy_time(veer__act *a, uint64_t ns)
+{
+    veer_hist_record(a->window[a->current], ns);
+    if (++a->in_window < POLICY_WINDOW)
+        return;
+    uint64_t p99 = 0;
+    if (veer_hist_percentile(a->window[a->current], 99.0, &p99) == 0)
+        a->policy_p99_ns = p99;
+    a->current ^= 1;
+    veer_hist_reset(a->window[a->current]);
+    a->in_window = 0;
+}
+
+static size_t pack_reply(veer__act *a, Veer__Wire__Reply *r)
+{
+    if (veer__wire__reply__get_packed_size(r) > a->reply_cap)
+        return 0;
+    return veer__wire__reply__pack(r, a->reply_buf);
+}
+
+static size_t error_reply(veer__act *a, uint64_t id, const veer_error *err)
+{
+    count(&a->errors);
+    return veer__wire_pack_error(id, err, a->reply_buf, a->reply_cap);
+}
+
+static void use_fallback(veer__act *a, float *value)
+{
+    memcpy(a->action, a->info->fallback_action, a->info->action_dim * sizeof(float));
+    *value = 0.0f;
+}
+
+/* Computes one action. Returns the reply size; t0 is when the request left the socket. */
+static size_t serve_act(veer__act *a, uint64_t id, const Veer__Wire__ActRequest *q, uint64_t t0)
+{
+    const veer_model_info *info = a->info;
+    veer_error err;
+    if (q->channel == NULL || q->channel[0] == '\0') {
+        veer__error_set(&err, VEER_EFIELD, "act.channel", "the channel name is empty");
+        return error_reply(a, id, &err);
+    }
+    if (strlen(q->channel) >= VEER__CHANNEL_NAME_MAX) {
+        veer__error_set(&err, VEER_EFIELD, "act.channel", "channel names are at most %d bytes",
+                        VEER__CHANNEL_NAME_MAX - 1);
+        return error_reply(a, id, &err);
+    }
+    if (q->n_state != info->state_dim) {
+        veer__error_set(&err, VEER_EDIM, "act.state", "the state has %zu values; the model reads %u",
+                        q->n_state, info->state_dim);
+        return error_reply(a, id, &err);
+    }
+    for (size_t i = 0; i < q->n_state; i++) {
+        if (!isfinite(q->state[i])) {
+            char field[64];
+            snprintf(field, sizeof field, "act.state[%zu]", i);
+            veer__error_set(&err, VEER_ENONFINITE, field, "state[%zu] (%s) is %s", i, info->feature_names[i],
+                            isnan(q->state[i]) ? "NaN" : "infinite");
+            return error_reply(a, id, &err);
+        }
+    }
+
+    uint64_t deadline_ns = (uint64_t)(q->deadline_us ? q->deadline_us : a->cfg.default_deadline_us) * 1000u;
+    Veer__Wire__ActReply ar = VEER__WIRE__ACT_REPLY__INIT;
+    ar.seq = q->seq;
+    ar.model_version = (char *)info->model_version;
+    ar.task = "";
+    float value = 0.0f;
+    uint32_t flags = 0;
+
+    veer__channel *ch = veer__channels_find(a->cfg.channels, q->channel);
+    const veer__active_task *task = ch ? atomic_load_explicit(&ch->active, memory_order_seq_cst) : NULL;
+    if (task == NULL) {
+        use_fallback(a, &value);
+        flags = VEER_ACT_FALLBACK | VEER_ACT_NO_TASK;
+        count(&a->no_task);
+    } else {
+        ar.task = (char *)task->task;
+        ar.epoch = task->epoch;
+        uint64_t t1 = veer__now_ns();
+        if (t1 - t0 + a->policy_p99_ns > deadline_ns) {
+            /* The reply must leave before the deadline, so a request that cannot make it gets the
+             * fallback now rather than a fresh action too late. */
+            use_fallback(a, &value);
+            flags = VEER_ACT_FALLBACK | VEER_ACT_DEADLINE;
+        } else {
+            int rc = veer_act(a->ws, q->state, task->z, a->action, &value, &flags);
+            uint64_t t2 = veer__now_ns();
+            record_policy_time(a, t2 - t1);
+            if (rc < 0) {
+                use_fallback(a, &value);
+                flags = VEER_ACT_FALLBACK | VEER_ACT_NONFINITE;
+            } else if (t2 - t0 > deadline_ns) {
+                use_fallback(a, &value);
+                flags |= VEER_ACT_FALLBACK | VEER_ACT_DEADLINE;
+            }
+        }
+    }
+    if (flags & VEER_ACT_DEADLINE)
+        count(&a->deadline_misses);
+    if (flags & VEER_ACT_FALLBACK)
+        count(&a->fallbacks);
+    count(&a->acts);
+    if (ch != NULL)
+        atomic_fetch_add_explicit(&ch->acts, 1, memory_order_relaxed);
+
+    ar.n_action = info->action_dim;
+    ar.action = a->action;
+    ar.value = value;
+    ar.flags = flags;
+    ar.server_us = (uint32_t)((veer__now_ns() - t0) / 1000u);
+    Veer__Wire__Reply r = VEER__WIRE__REPLY__INIT;
+    r.protocol = VEER__PROTOCOL;
+    r.id = id;
+    r.body_case = VEER__WIRE__REPLY__BODY_ACT;
+    r.act = &ar;
+    return pack_reply(a, &r);
+}
+
+static void serve_one(veer__act *a)
+{
+    uint64_t t0 = veer__now_ns();
+    size_t len = 0, out = 0;
+    const uint8_t *payload = veer__wire_payload(&a->msg, &len);
+    uint64_t id = 0;
+    veer_error err;
+    Veer__Wire__Request *req = NULL;
+
+    if (a->msg.overflow) {
+        veer__error_set(&err, VEER_EBADMSG, "request", "a request is one frame after the routing frames");
+        out = error_reply(a, 0, &err);
+    } else if (len > a->cfg.max_message_bytes) {
+        veer__error_set(&err, VEER_EMSGSIZE, "request", "the request has %zu bytes; the act socket takes at most %u",
+                        len, a->cfg.max_message_bytes);
+        out = error_reply(a, 0, &err);
+    } else if ((req = veer__wire__request__unpack(&a->arena.allocator, len, payload)) == NULL) {
+        veer__error_set(&err, VEER_EBADMSG, "request", "%zu bytes that do not decode as a veer.wire.Request", len);
+        out = error_reply(a, 0, &err);
+    } else if ((id = req->id, req->protocol != VEER__PROTOCOL)) {
+        veer__error_set(&err, VEER_EPROTOCOL, "protocol", "protocol %u is not spoken here; veerd speaks %d",
+                        req->protocol, VEER__PROTOCOL);
+        out = error_reply(a, id, &err);
+    } else if (req->body_case == VEER__WIRE__REQUEST__BODY_ACT) {
+        out = serve_act(a, id, req->act, t0);
+    } else if (req->body_case == VEER__WIRE__REQUEST__BODY_DESCRIBE) {
+        Veer__Wire__DescribeReply d;
+        veer__wire_describe(&d, a->info, a->cfg.default_deadline_us, a->feature_scratch);
+        Veer__Wire__Reply r = VEER__WIRE__REPLY__INIT;
+        r.protocol = VEER__PROTOCOL;
+        r.id = id;
+        r.body_case = VEER__WIRE__REPLY__BODY_DESCRIBE;
+        r.describe = &d;
+        out = pack_reply(a, &r);
+    } else if (req->body_case == VEER__WIRE__REQUEST__BODY__NOT_SET) {
+        veer__error_set(&err, VEER_EMSGTYPE, "body", "the request has no body this server knows");
+        out = error_reply(a, id, &err);
+    } else {
+        veer__error_set(&err, VEER_EMSGTYPE, "body", "the act socket answers act and describe; send task and "
+                                                     "channel requests to the admin socket");
+        out = error_reply(a, id, &err);
+    }
+    if (out == 0) { /* the reply did not fit: cannot happen with the sizes computed at start */
+        veer__error_set(&err, VEER_ENOMEM, "reply", "the reply does not fit the reply buffer");
+        out = error_reply(a, id, &err);
+    }
+    veer__wire_send(a->socket, &a->msg, a->reply_buf, out);
+    veer__arena_reset(&a->arena);
+}
+
+static void *act_main(void *arg)
+{
+    veer__act *a = arg;
+    for (;;) {
+        if (veer__wire_recv(a->socket, &a->msg, 0) == 0) {
+            serve_one(a);
+        } else if (errno == ETERM) {
+            break;
+        }
+        veer__channels_quiescent(a->cfg.channels);
+        if (atomic_load_explicit(&a->stop, memory_order_acquire))
+            break;
+    }
+    /* Stopping: answer what is already queued, then go. */
+    while (veer__wire_recv(a->socket, &a->msg, ZMQ_DONTWAIT) == 0) {
+        serve_one(a);
+        veer__channels_quiescent(a->cfg.channels);
+    }
+    veer__channels_quiescent(a->cfg.channels);
+    return NULL;
+}
+
+static void act_free(veer__act *a)
+{
+    if (a->socket != NULL)
+        zmq_close(a->socket);
+    veer__wire_msg_close(&a->msg);
+    veer_workspace_destroy(a->ws);
+    veer__arena_free(&a->arena);
+    veer_hist_destroy(a->window[0]);
+    veer_hist_destroy(a->window[1]);
+    veer__free(a->reply_buf);
+    veer__free(a->action);
+    veer__free(a->feature_scratch);
+    veer__free(a);
+}
+
+int veer__act_start(const veer__act_config *cfg, veer__act **out, veer_error *err)
+{
+    int rc;
+    veer__act *a = veer__calloc(1, sizeof *a);
+    if (a == NULL)
+        return veer__error_set(err, VEER_ENOMEM, "act", NULL);
+    a->cfg = *cfg;
+    a->info = veer_bundle_info(cfg->bundle);
+    veer__wire_msg_init(&a->msg);
+    atomic_init(&a->stop, 0);
+    const veer_model_info *info = a->info;
+
+    size_t names = 0;
+    for (uint32_t i = 0; i < info->state_dim; i++)
+        names += strlen(info->feature_names[i]) + 8;
+    a->reply_cap = 1024 + VEER__WIRE_ERROR_CAP + strlen(info->model_version) + names +
+                   16u * (size_t)info->action_dim + VEER__TASK_NAME_MAX;
+    a->reply_buf = veer__malloc(a->reply_cap);
+    a->action = veer__calloc(info->action_dim, sizeof(float));
+    a->feature_scratch = veer__calloc(info->state_dim, sizeof(char *));
+    if (a->reply_buf == NULL || a->action == NULL || a->feature_scratch == NULL ||
+        veer__arena_init(&a->arena, 16u * (size_t)cfg->max_message_bytes + 4096) != 0 ||
+        veer_hist_create(&a->window[0]) != 0 || veer_hist_create(&a->window[1]) != 0) {
+        rc = veer__error_set(err, VEER_ENOMEM, "act", "no memory for the act thread's buffers");
+        goto fail;
+    }
+    if ((rc = veer_workspace_create(cfg->bundle, 1, &a->ws, err)) < 0)
+        goto fail;
+
+    if ((rc = veer__wire_router(cfg->zmq_ctx, cfg->endpoint, "--act", cfg->max_message_bytes, ACT_RECV_TIMEOUT_MS,
+                                cfg->server_secret_key, VEER__ZAP_ACT_DOMAIN, &a->socket, err)) < 0)
+        goto fail;
+    /* pthread_create is a full barrier, which is what libzmq asks for when a socket moves to
+     * another thread. */
+    if (pthread_create(&a->thread, NULL, act_main, a) != 0) {
+        rc = veer__error_set(err, VEER_EIO, "act", "cannot start the act thread");
+        goto fail;
+    }
+    a->thread_started = 1;
+    *out = a;
+    return 0;
+
+fail:
+    act_free(a);
+    return rc;
+}
+
+void veer__act_stop(veer__act *a)
+{
+    if (a == NULL)
+        return;
+    if (a->thread_started) {
+        atomic_store_explicit(&a->stop, 1, memory_order_release);
+        pthread_join(a->thread, NULL);
+    }
+    act_free(a);
+}
+
+void veer__act_counters_get(const veer__act *a, veer__act_counters *out)
+{
+    veer__act *m = (veer__act *)a;
+    out->acts = atomic_load_explicit(&m->acts, memory_order_relaxed);
+    out->fallbacks = atomic_load_explicit(&m->fallbacks, memory_order_relaxed);
+    out->deadline_misses = atomic_load_explicit(&m->deadline_misses, memory_order_relaxed);
+    out->errors = atomic_load_explicit(&m->errors, memory_order_relaxed);
+    out->no_task = atomic_load_explicit(&m->no_task, memory_order_relaxed);
+}

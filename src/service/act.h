@@ -1,0 +1,54 @@
+/* The act thread: one dedicated thread serving controllers on a ZeroMQ ROUTER socket.
+ *
+ * Per request it decodes the Request into a preallocated arena, finds the channel in the
+ * lock-free channel table, computes the action with its own veer_workspace and packs the reply
+ * into a preallocated buffer: no allocation of ours, no lock that admin work can hold, no
+ * logging. It answers Act and Describe; anything else gets an EMSGTYPE error naming the admin
+ * socket.
+ *
+ * Deadlines. The deadline counts from the moment the thread takes the request off the socket
+ * (time spent queued inside libzmq before that is invisible to the server; the client's own
+ * local deadline covers it). A request whose policy would finish late by the running p99 of
+ * policy time, or that did finish late, gets the fallback action with VEER_ACT_DEADLINE.
+ *
+ * Unknown channels. An act on a channel nobody has switched yet answers with the fallback action
+ * and VEER_ACT_FALLBACK | VEER_ACT_NO_TASK, exactly like a channel that exists with no task: a
+ * controller may start before its supervisor, and it needs an action on every tick either way.
+ * Malformed requests (bad state, bad channel name) get Error replies. */
+#ifndef VEER_SERVICE_ACT_H
+#define VEER_SERVICE_ACT_H
+
+#include <stdatomic.h>
+#include <stdint.h>
+
+#include "service/channels.h"
+#include "veer/runtime.h"
+
+typedef struct veer__act veer__act;
+
+typedef struct veer__act_config {
+    void *zmq_ctx;
+    const char *endpoint;
+    const veer_bundle *bundle;
+    veer__channels *channels;
+    uint32_t default_deadline_us;
+    uint32_t max_message_bytes;
+    const uint8_t *server_secret_key; /* 32 bytes: require CURVE; NULL: no authentication */
+} veer__act_config;
+
+typedef struct veer__act_counters {
+    uint64_t acts, fallbacks, deadline_misses, errors, no_task;
+} veer__act_counters;
+
+/* Creates the socket, binds it and starts the thread. Returns 0, or VEER_EIO (bind failed;
+ * message says why) / VEER_ENOMEM. The caller owns *out. Loop thread. */
+int veer__act_start(const veer__act_config *cfg, veer__act **out, veer_error *err);
+
+/* Stops taking requests: the thread answers what is already queued on the socket, closes it
+ * and exits; returns once it has. NULL allowed. Loop thread. */
+void veer__act_stop(veer__act *a);
+
+/* Counters so far (any thread; each read atomically). */
+void veer__act_counters_get(const veer__act *a, veer__act_counters *out);
+
+#endif
