@@ -4,6 +4,7 @@
  * clipped action, argmax ties going to the lowest index, the fallback on a non-finite output,
  * and refusing non-finite inputs and out-of-range embedding indices. */
 #include <math.h>
+#include <pthread.h>
 #include <setjmp.h>
 #include <stdarg.h>
 #include <stddef.h>
@@ -383,6 +384,57 @@ static void test_workspace_and_blas(void **state)
     fx_free_all();
 }
 
+/* One bundle shared by threads, each with its own workspace: every thread gets exactly the
+ * actions computed beforehand on one thread (the bundle is read-only after opening). */
+enum { SHARE_N = 150, SHARE_THREADS = 3 };
+
+typedef struct share_job {
+    veer_bundle *bundle;
+    const float *states, *z;
+    float actions[SHARE_N * 2], values[SHARE_N];
+    uint32_t flags[SHARE_N];
+    int rc;
+} share_job;
+
+static void *share_run(void *arg)
+{
+    share_job *j = arg;
+    veer_workspace *ws = NULL;
+    j->rc = veer_workspace_create(j->bundle, 1, &ws, NULL);
+    for (int rep = 0; rep < 5 && j->rc == 0; rep++)
+        for (int r = 0; r < SHARE_N && j->rc == 0; r++)
+            j->rc = veer_act(ws, j->states + r * 4, j->z, j->actions + r * 2, &j->values[r],
+                             &j->flags[r]);
+    veer_workspace_destroy(ws);
+    return NULL;
+}
+
+static void test_shared_bundle_threads(void **state)
+{
+    (void)state;
+    fx_srand(28);
+    veer_bundle *b = fx_open(fx_continuous_model());
+    float *states = fx_random(SHARE_N * 4, 2.0f), *z = random_z(3);
+    share_job *want = fx_alloc(sizeof *want), *jobs = fx_alloc(SHARE_THREADS * sizeof *jobs);
+    *want = (share_job){.bundle = b, .states = states, .z = z};
+    share_run(want);
+    assert_int_equal(want->rc, 0);
+    pthread_t t[SHARE_THREADS];
+    for (int i = 0; i < SHARE_THREADS; i++) {
+        jobs[i] = (share_job){.bundle = b, .states = states, .z = z};
+        assert_int_equal(pthread_create(&t[i], NULL, share_run, &jobs[i]), 0);
+    }
+    for (int i = 0; i < SHARE_THREADS; i++) {
+        pthread_join(t[i], NULL);
+        assert_int_equal(jobs[i].rc, 0);
+        assert_memory_equal(jobs[i].actions, want->actions, sizeof want->actions);
+        assert_memory_equal(jobs[i].values, want->values, sizeof want->values);
+        assert_memory_equal(jobs[i].flags, want->flags, sizeof want->flags);
+    }
+    veer_bundle_close(b);
+    fx_free_all();
+}
+
 int main(void)
 {
     const struct CMUnitTest tests[] = {
@@ -393,6 +445,7 @@ int main(void)
         cmocka_unit_test(test_argmax_worked_example),
         cmocka_unit_test(test_embedding_state_index),
         cmocka_unit_test(test_workspace_and_blas),
+        cmocka_unit_test(test_shared_bundle_threads),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }
