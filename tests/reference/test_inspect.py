@@ -8,6 +8,7 @@ exit 3 naming the error code and the field; the shipped example must be what its
 import importlib.util
 import json
 import os
+import re
 import subprocess
 
 import numpy as np
@@ -75,10 +76,13 @@ def test_text_names_what_matters(lib, build_dir, source_dir, tmp_path):
             assert name in r.stdout
         for L in b.model.forward.branches[0].layers:
             assert f"{vb.LAYER_NAMES[L.kind]}({L.in_dim}->{L.out_dim})" in r.stdout
-        for f in b.b_features():
-            line = next(x for x in r.stdout.splitlines()
-                        if x.rstrip().endswith(" " + b.model.feature_names[f]))
-            assert line.strip().startswith("*"), line
+        # One line per feature: "*" when B reads it, the index, the name, the training mean.
+        mean = b.arrays["stats.mean"]
+        for i, name in enumerate(b.model.feature_names):
+            hit = re.search(rf"^ +([* ]) +{i} +{re.escape(name)} +(\S+)", r.stdout, re.M)
+            assert hit, f"feature {i} {name} not listed"
+            assert (hit.group(1) == "*") == (i in b.b_features())
+            assert float(hit.group(2)) == pytest.approx(mean[i], rel=1e-3, abs=1e-6)
         if b.action.kind == "continuous":
             assert f"[{b.action.low[0]:g}, {b.action.high[0]:g}]" in r.stdout
         assert b.model.provenance.created in r.stdout

@@ -9,6 +9,7 @@
  */
 #include <cjson/cJSON.h>
 #include <errno.h>
+#include <math.h>
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
@@ -112,6 +113,12 @@ static int reads_b(const veer_model_info *info, uint32_t feature)
     return 0;
 }
 
+/* The training standard deviation of one feature: the root of the covariance's diagonal. */
+static float feature_std(const veer_model_info *info, uint32_t i)
+{
+    return sqrtf(fmaxf(info->state_cov[(size_t)i * info->state_dim + i], 0.0f));
+}
+
 /* ---- text ------------------------------------------------------------------------------- */
 
 static void print_layers(const char *label, Veer__Bundle__Layer *const *layers, size_t n)
@@ -179,10 +186,19 @@ static void print_text(const char *path, const veer_model_info *info, const insp
         for (uint32_t i = 0; i < m->action->n_names; i++)
             printf("    %2u %s\n", i, m->action->names[i]);
     }
-    printf("  features       %u (* read by B: %u of them)\n", info->state_dim,
-           info->b_feature_count);
-    for (uint32_t i = 0; i < info->state_dim; i++)
-        printf("    %c %3u %s\n", reads_b(info, i) ? '*' : ' ', i, info->feature_names[i]);
+    printf("  features       %u (* read by B: %u of them)%s\n", info->state_dim,
+           info->b_feature_count, info->has_stats ? "; training mean and std" : "");
+    int width = 0;
+    for (uint32_t i = 0; i < info->state_dim; i++) {
+        int len = (int)strlen(info->feature_names[i]);
+        width = len > width ? len : width;
+    }
+    for (uint32_t i = 0; i < info->state_dim; i++) {
+        printf("    %c %3u %-*s", reads_b(info, i) ? '*' : ' ', i, width, info->feature_names[i]);
+        if (info->has_stats)
+            printf("  %11.4g  %10.4g", (double)info->state_mean[i], (double)feature_std(info, i));
+        printf("\n");
+    }
     printf("  task defaults  rescale %s (norm %g), center rewards %s, ridge %g\n",
            info->rescale ? "on" : "off", (double)info->rescale_norm,
            info->center_rewards ? "on" : "off", (double)info->ridge);
@@ -209,11 +225,29 @@ static void print_text(const char *path, const veer_model_info *info, const insp
 
 /* ---- JSON (the keys of `python3 -m veer.bundle show --json`) ----------------------------- */
 
+/* A float32 as the shortest decimal that reads back as the same float32 ("0.98", not the
+ * widened double's "0.98000001907348633"): exact for a machine, readable for a person. */
+static cJSON *json_f32(float x)
+{
+    char buf[32];
+    for (int digits = 6; digits <= 9; digits++) {
+        snprintf(buf, sizeof buf, "%.*g", digits, (double)x);
+        if ((float)strtod(buf, NULL) == x)
+            break;
+    }
+    return cJSON_CreateNumber(strtod(buf, NULL));
+}
+
+static void json_add_f32(cJSON *o, const char *key, float x)
+{
+    cJSON_AddItemToObject(o, key, json_f32(x));
+}
+
 static cJSON *json_floats(const float *v, size_t n)
 {
     cJSON *a = cJSON_CreateArray();
     for (size_t i = 0; v != NULL && i < n; i++)
-        cJSON_AddItemToArray(a, cJSON_CreateNumber(v[i]));
+        cJSON_AddItemToArray(a, json_f32(v[i]));
     return a;
 }
 
@@ -278,8 +312,8 @@ static cJSON *json_summary(const char *path, const veer_model_info *info, const 
     cJSON_AddStringToObject(o, "model_version", info->model_version);
     cJSON_AddNumberToObject(o, "state_dim", info->state_dim);
     cJSON_AddNumberToObject(o, "z_dim", info->z_dim);
-    cJSON_AddNumberToObject(o, "discount", info->discount);
-    cJSON_AddNumberToObject(o, "decision_step_s", info->decision_step_s);
+    json_add_f32(o, "discount", info->discount);
+    json_add_f32(o, "decision_step_s", info->decision_step_s);
     cJSON_AddNumberToObject(o, "memory_bytes", (double)memory);
 
     cJSON *feats = cJSON_AddArrayToObject(o, "features");
@@ -288,6 +322,10 @@ static cJSON *json_summary(const char *path, const veer_model_info *info, const 
         cJSON_AddNumberToObject(jf, "index", i);
         cJSON_AddStringToObject(jf, "name", info->feature_names[i]);
         cJSON_AddBoolToObject(jf, "read_by_b", reads_b(info, i));
+        if (info->has_stats) {
+            json_add_f32(jf, "mean", info->state_mean[i]);
+            json_add_f32(jf, "std", feature_std(info, i));
+        }
         cJSON_AddItemToArray(feats, jf);
     }
     cJSON *bf = cJSON_AddArrayToObject(o, "b_features");
@@ -310,9 +348,9 @@ static cJSON *json_summary(const char *path, const veer_model_info *info, const 
 
     cJSON *td = cJSON_AddObjectToObject(o, "task_defaults");
     cJSON_AddBoolToObject(td, "rescale", info->rescale);
-    cJSON_AddNumberToObject(td, "rescale_norm", info->rescale_norm);
+    json_add_f32(td, "rescale_norm", info->rescale_norm);
     cJSON_AddBoolToObject(td, "center_rewards", info->center_rewards);
-    cJSON_AddNumberToObject(td, "ridge", info->ridge);
+    json_add_f32(td, "ridge", info->ridge);
 
     cJSON *nets = cJSON_AddObjectToObject(o, "networks");
     size_t total = network_params(m->forward) + network_params(m->backward);
@@ -329,9 +367,9 @@ static cJSON *json_summary(const char *path, const veer_model_info *info, const 
     if (info->has_stats) {
         cJSON_AddNumberToObject(st, "count", (double)info->stats_count);
         cJSON_AddNumberToObject(st, "bins", info->bins);
-        cJSON_AddNumberToObject(st, "cov_ridge", info->cov_ridge);
-        cJSON_AddNumberToObject(st, "mahalanobis_p99", info->mahalanobis_p99);
-        cJSON_AddNumberToObject(st, "mahalanobis_p999", info->mahalanobis_p999);
+        json_add_f32(st, "cov_ridge", info->cov_ridge);
+        json_add_f32(st, "mahalanobis_p99", info->mahalanobis_p99);
+        json_add_f32(st, "mahalanobis_p999", info->mahalanobis_p999);
     }
     cJSON_AddNumberToObject(o, "reference_count", info->reference_count);
     cJSON_AddBoolToObject(o, "cov_b", info->cov_b != NULL);

@@ -605,6 +605,11 @@ def summary(b: Bundle) -> dict:
         "provenance": {k: getattr(m.provenance, k)
                        for k in ("producer", "created", "source_digest", "settings", "notes")},
     }
+    mean, cov = b.arrays["stats.mean"], b.arrays["stats.cov"]
+    if out["stats"]["present"] and mean.size == m.state_dim and cov.ndim == 2:
+        for i, f in enumerate(out["features"]):
+            f["mean"] = float(mean[i])
+            f["std"] = float(np.sqrt(max(float(cov[i, i]), 0.0)))
     if out["stats"]["present"]:
         out["stats"].update({"count": m.stats.count, "bins": m.stats.bins,
                              "cov_ridge": m.stats.cov_ridge,
