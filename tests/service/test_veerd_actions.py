@@ -1,0 +1,203 @@
+"""veerd over real sockets: the actions and task vectors it serves equal what libveer computes
+in-process (through ctypes) for the same bundle, task and state; tasks from reward samples and
+from goal states; identical specifications stored once; a controller at 1 kHz sees every switch
+whole while a supervisor switches its channel 100 times."""
+import threading
+import time
+
+import numpy as np
+import pytest
+
+import harness
+import veerlib
+from harness import ACT_DEADLINE, ACT_FALLBACK, ACT_NO_TASK, expect_error
+
+
+def runtime(lib, b):
+    return veerlib.Runtime(lib, b.data)
+
+
+@pytest.mark.parametrize("kind", ["tcp", "ipc"])
+def test_actions_equal_in_process_runtime(lib, bundle, start, kind):
+    d, c = start(bundle, kind)
+    rng = np.random.default_rng(3)
+    s = bundle.states[:64]
+    r = rng.normal(size=64).astype(np.float32)
+    reply = c.put_samples("sort-left", s, r)
+    assert reply.WhichOneof("body") == "task", reply
+    with runtime(lib, bundle) as rt:
+        rc, z, rep, err = rt.encode(veerlib.TASK_SAMPLES, s, r)
+        assert rc == 0
+        np.testing.assert_allclose(np.array(reply.task.z, np.float32), z, rtol=1e-5, atol=1e-6)
+        assert reply.task.count == 64 and reply.task.source == 1 and reply.task.encoded
+        assert reply.task.r2 == pytest.approx(rep.r2, rel=1e-6, abs=1e-9)
+        assert c.switch("arm", "sort-left").channel.epoch == 1
+        zw = np.array(reply.task.z, np.float32)
+        for i, state in enumerate(bundle.states[100:150]):
+            a = c.do_act("arm", state, seq=i, deadline_us=200000)
+            assert a.WhichOneof("body") == "act", a
+            rc, action, value, flags = rt.act(state, zw)
+            assert rc == 0
+            assert a.act.seq == i and a.act.task == "sort-left" and a.act.epoch == 1
+            np.testing.assert_array_equal(np.array(a.act.action, np.float32), action)
+            assert np.float32(a.act.value) == np.float32(value)
+            assert a.act.flags == flags
+            assert a.act.model_version == rt.info.model_version.decode()
+
+
+def test_describe_matches_bundle(lib, bundle, start):
+    d, c = start(bundle)
+    with runtime(lib, bundle) as rt:
+        for sock in (c.act, c.admin):
+            r = c.describe(sock).describe
+            info = rt.info
+            assert r.state_dim == info.state_dim and r.z_dim == info.z_dim
+            assert r.action_kind == info.action_kind and r.action_dim == info.action_dim
+            assert bytes(r.model_digest) == bytes(info.digest[:32])
+            fb = np.ctypeslib.as_array(info.fallback_action, (info.action_dim,))
+            np.testing.assert_array_equal(np.array(r.fallback_action, np.float32), fb)
+            assert list(r.feature_names) == [info.feature_names[i].decode() for i in range(info.state_dim)]
+            assert r.default_deadline_us == 1000
+
+
+def test_tasks_from_goals(lib, bundle, start):
+    d, c = start(bundle)
+    goals = bundle.states[200:203]
+    w = np.array([1.0, 0.5, 2.0], np.float32)
+    reply = c.put_goals("reach-bins", goals, w)
+    assert reply.WhichOneof("body") == "task", reply
+    with runtime(lib, bundle) as rt:
+        rc, z, rep, err = rt.encode(veerlib.TASK_GOALS, goals, w)
+        assert rc == 0
+        np.testing.assert_allclose(np.array(reply.task.z, np.float32), z, rtol=1e-5, atol=1e-6)
+        # No weights means weight 1 for every goal, and is the same specification as all ones.
+        one = c.put_goals("reach-one", goals)
+        ones = c.put_goals("reach-ones", goals, np.ones(3, np.float32))
+        rc, z1, _, _ = rt.encode(veerlib.TASK_GOALS, goals, np.ones(3, np.float32))
+        np.testing.assert_allclose(np.array(one.task.z, np.float32), z1, rtol=1e-5, atol=1e-6)
+        assert one.task.digest == ones.task.digest
+        assert one.task.digest != reply.task.digest
+
+
+def test_identical_specs_stored_once(bundle, start):
+    d, c = start(bundle)
+    s = bundle.states[:32]
+    r = np.linspace(-1, 1, 32, dtype=np.float32)
+    a = c.put_samples("left", s, r)
+    b = c.put_samples("left-again", s, r)
+    assert a.task.digest == b.task.digest and list(a.task.z) == list(b.task.z)
+    # The same name and content: an idempotent success.
+    again = c.put_samples("left", s, r)
+    assert again.WhichOneof("body") == "task" and again.task.digest == a.task.digest
+    # -0.0 and 0.0 are the same content.
+    r0 = r.copy()
+    r0[r0 == 0] = 0.0
+    assert c.put_samples("left", s, np.where(r0 == 0, np.float32(-0.0), r0)).WhichOneof("body") == "task"
+    # The same name with other content: refused, and the stored task is unchanged.
+    expect_error(c.put_samples("left", s, r * 2), "ENAMECONFLICT", "put_task.name")
+    assert c.get("left").task.digest == a.task.digest
+    names = sorted(t.name for t in c.list_tasks().tasks.tasks)
+    assert names == ["left", "left-again"]
+    # Dropping one name leaves the other, with its vector.
+    assert c.drop("left").WhichOneof("body") == "done"
+    assert list(c.get("left-again").task.z) == list(a.task.z)
+    expect_error(c.get("left"), "ENOTASK", "get_task.name")
+
+
+def test_no_task_and_unknown_channel_get_fallback(lib, bundle, start):
+    d, c = start(bundle)
+    with runtime(lib, bundle) as rt:
+        fb = np.ctypeslib.as_array(rt.info.fallback_action, (rt.info.action_dim,)).copy()
+    a = c.do_act("never-switched", bundle.states[0], seq=5)
+    assert a.WhichOneof("body") == "act"
+    assert a.act.flags == ACT_FALLBACK | ACT_NO_TASK and a.act.task == "" and a.act.epoch == 0
+    np.testing.assert_array_equal(np.array(a.act.action, np.float32), fb)
+    assert a.act.value == 0.0 and a.act.seq == 5
+
+
+def test_deadline_too_short_gets_fallback(lib, bundle, start):
+    """A deadline shorter than the policy's running p99 is answered with the fallback at once."""
+    d, c = start(bundle)
+    c.put_samples("t", bundle.states[:40], np.arange(40, dtype=np.float32) - 20)
+    c.switch("arm", "t")
+    # Fill the estimator's first window (1024 policy evaluations) with a generous deadline.
+    for i in range(1100):
+        r = c.do_act("arm", bundle.states[i % 500], seq=i, deadline_us=1000000)
+        assert r.act.flags & ACT_FALLBACK == 0
+    # 1 µs: decoding the request and evaluating the policy take longer than that, so every
+    # reply either is refused up front by the p99 estimate or finishes late; both give the fallback.
+    late = [c.do_act("arm", bundle.states[i], seq=i, deadline_us=1) for i in range(20)]
+    assert all(r.act.flags & (ACT_FALLBACK | ACT_DEADLINE) == ACT_FALLBACK | ACT_DEADLINE for r in late)
+    assert all(r.act.task == "t" and r.act.epoch == 1 for r in late)
+    status = c.call(c.admin, harness.wire.Request(status=harness.wire.StatusRequest())).status
+    assert status.deadline_misses >= 20 and status.acts >= 1120
+
+
+def test_controller_sees_every_switch_whole(bundle, start):
+    """1 kHz for 2 s on one channel while a supervisor switches it 100 times between two tasks.
+    Every reply must come (none missing, none an error), carry the task that the switch with its
+    epoch installed, never go back in epoch, and be at least as new as the last switch the
+    supervisor had been told about when the request was sent."""
+    d, c = start(bundle)
+    s = bundle.states[:48]
+    c.put_samples("a", s, np.linspace(0, 1, 48, dtype=np.float32))
+    c.put_samples("b", s, np.linspace(1, 0, 48, dtype=np.float32))
+    first = c.switch("line-1", "a").channel.epoch
+    epoch_task = {first: "a"}
+    acked = [first]
+    requested = [first]
+    stop = threading.Event()
+
+    def supervisor():
+        for k in range(100):
+            task = "b" if k % 2 == 0 else "a"
+            requested[0] = first + k + 1
+            r = c.switch("line-1", task)
+            assert r.WhichOneof("body") == "channel", r
+            epoch_task[r.channel.epoch] = task
+            acked[0] = r.channel.epoch
+            time.sleep(0.018)
+        stop.set()
+
+    sent = []  # (seq, acked epoch at send)
+    replies = {}
+    sock = c.act
+    period = 0.001
+    t_sup = threading.Thread(target=supervisor)
+    t0 = time.perf_counter()
+    t_sup.start()
+    seq = 0
+    while time.perf_counter() - t0 < 2.0 or not stop.is_set():
+        if time.perf_counter() - t0 > 10.0:
+            break
+        target = t0 + seq * period
+        while time.perf_counter() < target:
+            while sock.poll(0):
+                r = harness.wire.Reply.FromString(sock.recv())
+                replies[r.id] = (r, requested[0])
+        sent.append((seq, acked[0]))
+        q = c.act_request("line-1", s[seq % 48], seq=seq, deadline_us=50000)
+        q.protocol, q.id = 1, seq + 1
+        sock.send(q.SerializeToString())
+        seq += 1
+    t_sup.join()
+    end = time.monotonic() + 10
+    while len(replies) < len(sent) and time.monotonic() < end:
+        if sock.poll(100):
+            r = harness.wire.Reply.FromString(sock.recv())
+            replies[r.id] = (r, requested[0])
+    assert len(sent) >= 2000
+    assert len(replies) == len(sent), f"{len(sent) - len(replies)} replies missing"
+    assert len(epoch_task) == 101
+    last = 0
+    for seq, acked_at_send in sent:
+        r, requested_at_recv = replies[seq + 1]
+        assert r.WhichOneof("body") == "act", r
+        assert r.act.seq == seq
+        assert r.act.flags & ACT_NO_TASK == 0
+        e = r.act.epoch
+        assert e >= last, f"epoch went back from {last} to {e} at seq {seq}"
+        assert acked_at_send <= e <= requested_at_recv
+        assert r.act.task == epoch_task[e], f"epoch {e} belongs to {epoch_task[e]}, reply says {r.act.task}"
+        last = e
+    assert last == first + 100
