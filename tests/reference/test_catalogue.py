@@ -121,3 +121,31 @@ def test_mutated_payloads_never_crash(lib):
     # The mutants must reach the validator's content checks, not only the decoder.
     print("outcomes by code:", dict(sorted(outcomes.items())))
     assert len(outcomes) >= 5, outcomes
+
+
+def test_degenerate_training_states_still_load(lib):
+    """Training logs with a constant feature, an exactly collinear one, a rare binary flag and
+    features five orders of magnitude apart: the exporter picks a ridge that libveer can invert
+    and says when the ridge is large for a feature; libveer's precision matrix, applied to the
+    training states, gives back the stored Mahalanobis p99 (numpy.quantile over the distances)."""
+    import warnings
+    import numpy as np
+    from veer import synth
+    rng = np.random.default_rng(3)
+    lay = synth.make_layout(kind="discrete", state_dim=8, z_dim=8, action_count=3, hidden=[16, 16])
+    w = synth.random_weights(lay, rng)
+    x = rng.normal(size=(3000, 8)) * [1, 10, 100, 1000, 1, 1, 1, 1]
+    x[:, 4] = 3.0
+    x[:, 5] = x[:, 0] + 2 * x[:, 1]
+    x[:, 6] = rng.random(3000) < 0.01
+    x[:, 7] = rng.normal(size=3000) * 0.01
+    x = x.astype(np.float32)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        m = vb.build_model(lay, w, x)
+    assert any(" 7 (variance" in str(c.message) for c in caught)
+    with veerlib.Runtime(lib, vb.pack_bundle(m)) as rt:
+        P = np.ctypeslib.as_array(rt.info.state_precision, (8, 8)).astype(np.float64)
+        mu = np.asarray(m.stats.mean, np.float64)
+        d = np.sqrt(np.einsum("ni,ij,nj->n", x - mu, P, x - mu))
+        assert np.quantile(d, 0.99) == pytest.approx(m.stats.mahalanobis_p99, rel=1e-2)

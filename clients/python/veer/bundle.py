@@ -57,6 +57,7 @@ import hashlib
 import json
 import os
 import sys
+import warnings
 from typing import Dict, Mapping, Optional, Tuple
 
 import numpy as np
@@ -265,8 +266,15 @@ def drift_statistics(states: np.ndarray, bins: int, cov_ridge: Optional[float] =
       (numpy.quantile's default linear interpolation, Hyndman & Fan 1996 type 7).
     Mahalanobis distance d(x) = sqrt((x - mean)^T (cov + ridge I)^-1 (x - mean)); its 99th
       and 99.9th percentiles over the training states themselves.
-    cov_ridge defaults to 1e-6 times the mean feature variance (common practice, no source):
-      enough to invert a covariance with a constant feature, too small to move the distances.
+    cov_ridge: a scalar added to the diagonal so that constant or collinear features do not
+      make the covariance singular. By default 1e-6 times the mean feature variance (common
+      practice, no source), raised by factors of 10 until the covariance as stored (float32)
+      plus the ridge has a Cholesky factor in float64, which is what libveer computes at load.
+      A scalar ridge shrinks the distance along low-variance features most: when it exceeds
+      0.1% of some feature's variance a warning names the feature; standardise features of
+      very different scales before export, or pass cov_ridge.
+    The distances use the float32-rounded covariance, so the percentiles describe the same
+    matrix the runtime inverts.
     """
     x = np.asarray(states, dtype=np.float64)
     n, dim = x.shape
@@ -277,11 +285,31 @@ def drift_statistics(states: np.ndarray, bins: int, cov_ridge: Optional[float] =
     mean = x.mean(axis=0)
     cov = np.cov(x, rowvar=False, ddof=1).reshape(dim, dim)
     cov = (cov + cov.T) / 2  # exactly symmetric after rounding, as the loader requires
-    if cov_ridge is None:
-        cov_ridge = 1e-6 * max(float(np.trace(cov)) / dim, 1e-12)
+    cov32 = cov.astype(np.float32).astype(np.float64)
+    ridge = 1e-6 * max(float(np.trace(cov)) / dim, 1e-12) if cov_ridge is None else cov_ridge
+    if not (np.isfinite(ridge) and ridge >= 0):
+        raise ValueError(f"cov_ridge: {ridge} must be finite and >= 0")
+    for _ in range(12):
+        try:
+            chol = np.linalg.cholesky(cov32 + ridge * np.eye(dim))
+            break
+        except np.linalg.LinAlgError:
+            if cov_ridge is not None:
+                raise ValueError(f"cov_ridge: {cov_ridge:g} leaves the covariance singular; "
+                                 f"raise it") from None
+            ridge *= 10.0
+    else:
+        raise ValueError("states: the covariance stays singular whatever the ridge")
+    variances = np.diag(cov)
+    small = np.nonzero((variances > 0) & (ridge > 1e-3 * variances))[0]
+    if small.size:
+        listed = ", ".join(f"{i} (variance {variances[i]:.3g})" for i in small[:8])
+        warnings.warn(f"stats.cov_ridge {ridge:g} exceeds 0.1% of the variance of features "
+                      f"{listed}: drift along them is under-reported; standardise features of "
+                      f"very different scales or pass cov_ridge")
+    cov_ridge = ridge
     probs = np.arange(1, bins) / bins
     edges = np.quantile(x, probs, axis=0).T  # dim x (bins - 1)
-    chol = np.linalg.cholesky(cov + cov_ridge * np.eye(dim))
     y = np.linalg.solve(chol, (x - mean).T)
     dist = np.sqrt(np.sum(y * y, axis=0))
     return {"count": n, "mean": mean, "cov": cov, "cov_ridge": float(cov_ridge), "bins": bins,
