@@ -69,6 +69,42 @@ static void test_relu_tanh(void **state)
     assert_float_equal(t[3], 1.0f, 0.0f);
 }
 
+static void test_tanh_accuracy(void **state)
+{
+    (void)state;
+    /* veer__k_tanh is a polynomial and exp-based approximation (see kernels.c); against the
+     * C library's double tanh it must stay within 2.5e-7 relative (about two float ulps) over
+     * [-12, 12] and over magnitudes from 1e-30 up, where relative accuracy is hardest. */
+    enum { N = 400001, L = 3000 };
+    float *x = malloc((N + 2 * L) * sizeof *x), *y = malloc((N + 2 * L) * sizeof *y);
+    assert_non_null(x);
+    assert_non_null(y);
+    for (int i = 0; i < N; i++)
+        x[i] = -12.0f + 24.0f * (float)i / (N - 1);
+    for (int i = 0; i < L; i++) {
+        x[N + i] = powf(10.0f, -30.0f + 30.0f * (float)i / L);
+        x[N + L + i] = -x[N + i];
+    }
+    memcpy(y, x, (N + 2 * L) * sizeof *x);
+    veer__k_tanh(N + 2 * L, y);
+    double worst = 0;
+    for (int i = 0; i < N + 2 * L; i++) {
+        double r = tanh((double)x[i]);
+        double e = r == 0 ? fabs(y[i]) : fabs(y[i] - r) / fabs(r);
+        worst = e > worst ? e : worst;
+    }
+    free(x);
+    free(y);
+    if (worst > 2.5e-7)
+        fail_msg("worst relative error %g", worst);
+
+    /* Special values: signed zeros keep their sign, infinities give +-1, NaN stays NaN. */
+    float s[6] = {0.0f, -0.0f, INFINITY, -INFINITY, NAN, 1e-40f};
+    veer__k_tanh(6, s);
+    assert_true(s[0] == 0.0f && !signbit(s[0]) && s[1] == 0.0f && signbit(s[1]));
+    assert_true(s[2] == 1.0f && s[3] == -1.0f && isnan(s[4]) && s[5] == 1e-40f);
+}
+
 static void test_layer_norm_formula(void **state)
 {
     (void)state;
@@ -190,6 +226,7 @@ int main(void)
     const struct CMUnitTest tests[] = {
         cmocka_unit_test(test_linear_single_and_batch),
         cmocka_unit_test(test_relu_tanh),
+        cmocka_unit_test(test_tanh_accuracy),
         cmocka_unit_test(test_layer_norm_formula),
         cmocka_unit_test(test_rescale_norm),
         cmocka_unit_test(test_copy_cols_concat),
