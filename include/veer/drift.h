@@ -80,6 +80,15 @@ typedef struct veer_drift_training {
     float mahalanobis_p999;
 } veer_drift_training;
 
+/* Points `out` at a loaded model's training statistics (veer_model_info from veer/runtime.h:
+ * state_mean, state_cov, state_precision, bins, quantile_edges, mahalanobis_p99/p999). The
+ * pointers stay the bundle's; veer_drift_create copies what it keeps, so the bundle may close
+ * after creation. Errors: VEER_EINVAL (NULL), VEER_EFIELD ("stats": the bundle carries no
+ * training statistics). Any thread. */
+struct veer_model_info;
+int veer_drift_training_from_model(const struct veer_model_info *info,
+                                   veer_drift_training *out, veer_error *err);
+
 #define VEER_DRIFT_MAX_BINS 1024u
 #define VEER_DRIFT_MAX_WINDOW 1000000u
 #define VEER_DRIFT_MAX_DIM 65535u
