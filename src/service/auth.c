@@ -50,14 +50,14 @@ int veer__auth_endpoint_is_local(const char *endpoint)
     return parts == 4;
 }
 
-/* Trims a line in place: drops a '#' comment and surrounding white space. */
+/* Trims a line in place; a line whose first visible character is '#' is a comment. Only at
+ * the start: '#' is one of Z85's 85 characters, so it may appear inside a key. */
 static char *trim(char *line)
 {
-    char *hash = strchr(line, '#');
-    if (hash != NULL)
-        *hash = '\0';
     while (isspace((unsigned char)*line))
         line++;
+    if (*line == '#')
+        *line = '\0';
     size_t n = strlen(line);
     while (n > 0 && isspace((unsigned char)line[n - 1]))
         line[--n] = '\0';

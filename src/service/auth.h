@@ -4,7 +4,7 @@
  *
  * Key files are Z85 text as `veer keygen` writes them: the server's secret key file holds one
  * 40-character line; the allowed-keys file holds one public key per line, with blank lines and
- * '#' comments allowed. The ZAP socket is served from veerd's loop thread. */
+ * lines starting with '#' (comments) allowed. The ZAP socket is served from veerd's loop thread. */
 #ifndef VEER_SERVICE_AUTH_H
 #define VEER_SERVICE_AUTH_H
 

@@ -39,7 +39,8 @@ static const opt_desc OPTIONS[] = {
      "Act endpoint (ZeroMQ ROUTER): controllers connect with DEALER and ask for actions."},
     {"--admin", "VEER_ADMIN", OPT_STR, OFF(admin_endpoint), "tcp://127.0.0.1:7711", 0, 0, 0,
      "Admin endpoint (ROUTER): supervisors put tasks and switch channels. Without --server-key\n"
-     "it must be loopback (tcp://127.0.0.1, tcp://[::1], tcp://localhost) or ipc://."},
+     "it must be loopback (tcp://127.0.0.1, tcp://[::1], tcp://localhost) or ipc://.\n"
+     "tcp://localhost:PORT is bound as tcp://127.0.0.1:PORT in every endpoint."},
     {"--events", "VEER_EVENTS", OPT_STR, OFF(events_endpoint), "tcp://127.0.0.1:7712", 0, 0, 0,
      "Events endpoint (PUB): switches, stored and dropped tasks, model loads."},
     {"--http", "VEER_HTTP", OPT_STR, OFF(http_endpoint), NULL, 0, 0, 0,
@@ -106,6 +107,18 @@ static int set_value(veer__config *cfg, const opt_desc *o, const char *text, con
     return 0;
 }
 
+/* libzmq binds to an interface or an address, not to a host name, so "localhost" is written
+ * as the address it always means here. */
+static void localhost_to_address(char *ep)
+{
+    static const char prefix[] = "tcp://localhost:";
+    if (strncmp(ep, prefix, sizeof prefix - 1) != 0)
+        return;
+    char rest[VEER__CONFIG_STR_MAX];
+    snprintf(rest, sizeof rest, "%s", ep + sizeof prefix - 1);
+    snprintf(ep, VEER__CONFIG_STR_MAX, "tcp://127.0.0.1:%.400s", rest);
+}
+
 static int check_endpoint(const char *flag, const char *ep, veer_error *err)
 {
     if (strncmp(ep, "tcp://", 6) != 0 && strncmp(ep, "ipc://", 6) != 0)
@@ -116,7 +129,7 @@ static int check_endpoint(const char *flag, const char *ep, veer_error *err)
     return 0;
 }
 
-static int check_whole(const veer__config *cfg, const int given[OPTION_COUNT], veer_error *err)
+static int check_whole(veer__config *cfg, const int given[OPTION_COUNT], veer_error *err)
 {
     for (size_t i = 0; i < OPTION_COUNT; i++) {
         const opt_desc *o = &OPTIONS[i];
@@ -125,6 +138,9 @@ static int check_whole(const veer__config *cfg, const int given[OPTION_COUNT], v
                                    o->flag, o->env, o->help);
     }
     int rc;
+    localhost_to_address(cfg->act_endpoint);
+    localhost_to_address(cfg->admin_endpoint);
+    localhost_to_address(cfg->events_endpoint);
     if ((rc = check_endpoint("--act", cfg->act_endpoint, err)) < 0 ||
         (rc = check_endpoint("--admin", cfg->admin_endpoint, err)) < 0 ||
         (rc = check_endpoint("--events", cfg->events_endpoint, err)) < 0)

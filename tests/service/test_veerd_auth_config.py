@@ -1,0 +1,172 @@
+"""Who may change the task, and configuration errors.
+
+CurveZMQ (RFC 26) on the admin socket with a ZAP handler (RFC 27) against a file of allowed
+public keys: a supervisor with a listed key can switch; one with an unlisted key or with no
+CURVE at all gets no connection, and nothing changes. Without keys, veerd refuses a non-loopback
+admin address. Bad configuration exits 2 with a message naming the flag."""
+import os
+import subprocess
+
+import numpy as np
+import pytest
+import zmq
+
+import harness
+from harness import VEERD
+
+
+def write_keys(tmp_path, allowed_publics):
+    server_public, server_secret = zmq.curve_keypair()
+    (tmp_path / "server.secret").write_bytes(server_secret + b"\n")
+    lines = ["# supervisors allowed to switch tasks", ""] + [k.decode() for k in allowed_publics]
+    (tmp_path / "allowed").write_text("\n".join(lines) + "\n")
+    return server_public
+
+
+def test_curve_admin(continuous_bundle, start, tmp_path):
+    sup_public, sup_secret = zmq.curve_keypair()
+    stranger_public, stranger_secret = zmq.curve_keypair()
+    server_public = write_keys(tmp_path, [sup_public])
+    extra = ["--server-key", str(tmp_path / "server.secret"), "--allowed-keys", str(tmp_path / "allowed")]
+    d, c = start(continuous_bundle, extra=extra, curve=(server_public, sup_public, sup_secret))
+    s = continuous_bundle.states
+    assert c.put_samples("a", s[:10], np.arange(10, dtype=np.float32)).WhichOneof("body") == "task"
+    assert c.put_samples("b", s[:10], -np.arange(10, dtype=np.float32)).WhichOneof("body") == "task"
+    assert c.switch("arm", "a").channel.epoch == 1
+    # The act socket needs no key unless --act-auth.
+    assert c.do_act("arm", s[0]).act.task == "a"
+
+    def attempt(curve):
+        other = harness.Client(d.eps, curve=curve)
+        try:
+            q = harness.wire.Request(protocol=1, id=1)
+            q.switch_channel.channel, q.switch_channel.task = "arm", "b"
+            return other.send_raw(other.admin, q.SerializeToString(), timeout_ms=1500)
+        finally:
+            other.close()
+
+    assert attempt((server_public, stranger_public, stranger_secret)) is None
+    assert attempt(None) is None
+    ch = c.list_channels().channels.channels
+    assert [(x.name, x.task, x.epoch) for x in ch] == [("arm", "a", 1)]
+    assert "auth: refused a CURVE connection" in d.log()
+    assert stranger_public.decode() in d.log()
+    # A second listed-key supervisor connection still works after the refusals.
+    assert attempt((server_public, sup_public, sup_secret)).channel.epoch == 2
+
+
+def test_curve_act_socket(continuous_bundle, start, tmp_path):
+    ctl_public, ctl_secret = zmq.curve_keypair()
+    server_public = write_keys(tmp_path, [ctl_public])
+    extra = ["--server-key", str(tmp_path / "server.secret"), "--allowed-keys", str(tmp_path / "allowed"),
+             "--act-auth"]
+    keys = (server_public, ctl_public, ctl_secret)
+    d, c = start(continuous_bundle, extra=extra, curve=keys, act_curve=keys)
+    assert c.describe().WhichOneof("body") == "describe"
+    plain = harness.Client(d.eps)
+    try:
+        q = harness.wire.Request(protocol=1, id=1)
+        q.describe.SetInParent()
+        assert plain.send_raw(plain.act, q.SerializeToString(), timeout_ms=1500) is None
+    finally:
+        plain.close()
+
+
+def run_veerd(args, env=None, timeout=20):
+    e = dict(os.environ)
+    e.update(env or {})
+    return subprocess.run([VEERD, *args], capture_output=True, text=True, timeout=timeout, env=e)
+
+
+@pytest.mark.parametrize("admin", ["tcp://0.0.0.0:7999", "tcp://*:7999", "tcp://192.168.1.5:7999",
+                                   "tcp://127.0.0.1.evil:7999", "tcp://eth0:7999"])
+def test_non_loopback_admin_refused_without_keys(continuous_bundle, tmp_path, admin):
+    r = run_veerd(["--bundle", str(continuous_bundle.path), "--state-dir", str(tmp_path / "s"),
+                   "--admin", admin])
+    assert r.returncode == 2, r.stderr
+    assert "--admin" in r.stderr and "loopback" in r.stderr
+    assert not (tmp_path / "s").exists(), "nothing is started or written"
+
+
+@pytest.mark.parametrize("kind", ["tcp-localhost", "tcp-127.0.0.2", "ipc"])
+def test_loopback_admin_accepted(continuous_bundle, start, tmp_path, kind):
+    eps = harness.endpoints("tcp", tmp_path)
+    if kind == "tcp-localhost":
+        eps["admin"] = eps["admin"].replace("127.0.0.1", "localhost")
+    elif kind == "tcp-127.0.0.2":
+        eps["admin"] = eps["admin"].replace("127.0.0.1", "127.0.0.2")
+    else:
+        eps["admin"] = f"ipc://{tmp_path}/admin.sock"
+    d, c = start(continuous_bundle, eps=eps)
+    assert c.describe(c.admin).WhichOneof("body") == "describe"
+
+
+@pytest.mark.parametrize("args,env,flag", [
+    (["--max-tasks", "abc"], {}, "--max-tasks"),
+    (["--max-tasks", "0"], {}, "--max-tasks"),
+    (["--max-tasks=-3"], {}, "--max-tasks"),
+    ([], {"VEER_MAX_CHANNELS": "9999999"}, "--max-channels"),
+    (["--default-deadline-us"], {}, "--default-deadline-us"),
+    (["--no-such-flag"], {}, "--no-such-flag"),
+    (["--act", "udp://127.0.0.1:1"], {}, "--act"),
+    (["--act", "tcp://127.0.0.1:7001", "--admin", "tcp://127.0.0.1:7001"], {}, "--admin"),
+    (["--server-key", "/nonexistent"], {}, "--allowed-keys"),
+    (["--act-auth"], {}, "--act-auth"),
+    (["--act-auth=maybe"], {}, "--act-auth"),
+])
+def test_bad_configuration_exits_2(continuous_bundle, tmp_path, args, env, flag):
+    r = run_veerd(["--bundle", str(continuous_bundle.path), "--state-dir", str(tmp_path / "s"), *args], env)
+    assert r.returncode == 2, r.stderr
+    assert flag in r.stderr, r.stderr
+
+
+def test_missing_bundle_and_bad_key_files(continuous_bundle, tmp_path):
+    r = run_veerd(["--state-dir", str(tmp_path / "s")], {"VEER_BUNDLE": ""})
+    # An empty VEER_BUNDLE counts as given; the load then fails (exit 1) naming --bundle.
+    assert r.returncode == 1 and "--bundle" in r.stderr
+    env = {k: v for k, v in os.environ.items() if k != "VEER_BUNDLE"}
+    r = subprocess.run([VEERD, "--state-dir", str(tmp_path / "s")], capture_output=True, text=True, env=env)
+    assert r.returncode == 2 and "--bundle" in r.stderr
+    (tmp_path / "bad.secret").write_text("not a key\n")
+    (tmp_path / "allowed").write_text("# none\n")
+    r = run_veerd(["--bundle", str(continuous_bundle.path), "--server-key", str(tmp_path / "bad.secret"),
+                   "--allowed-keys", str(tmp_path / "allowed")])
+    assert r.returncode == 2 and "--server-key" in r.stderr and "Z85" in r.stderr
+    pub, sec = zmq.curve_keypair()
+    (tmp_path / "good.secret").write_bytes(sec)
+    (tmp_path / "allowed").write_text(pub.decode() + "\nshort-line\n")
+    r = run_veerd(["--bundle", str(continuous_bundle.path), "--server-key", str(tmp_path / "good.secret"),
+                   "--allowed-keys", str(tmp_path / "allowed")])
+    assert r.returncode == 2 and "--allowed-keys" in r.stderr and "line 2" in r.stderr
+
+
+def test_help_explains_every_flag():
+    r = run_veerd(["--help"])
+    assert r.returncode == 0
+    for flag in ["--bundle", "--state-dir", "--act", "--admin", "--events", "--http", "--default-deadline-us",
+                 "--max-message-bytes", "--act-max-message-bytes", "--max-samples", "--max-tasks",
+                 "--max-channels", "--journal-compact-bytes", "--server-key", "--allowed-keys", "--act-auth"]:
+        assert f"  {flag} " in r.stdout, flag
+    for var in ["VEER_BUNDLE", "VEER_ADMIN", "VEER_STATE_DIR", "VEER_SERVER_KEY"]:
+        assert var in r.stdout
+
+
+def test_flag_overrides_environment(continuous_bundle, tmp_path):
+    # The environment says 0 (invalid) but the flag wins with a valid value: veerd starts.
+    eps = harness.endpoints("ipc", tmp_path)
+    env = dict(os.environ, VEER_MAX_TASKS="1")
+    args = [VEERD, "--bundle", str(continuous_bundle.path), "--state-dir", str(tmp_path / "s"),
+            "--act", eps["act"], "--admin", eps["admin"], "--events", eps["events"], "--max-tasks", "2"]
+    log = tmp_path / "log"
+    with open(log, "wb") as f:
+        p = subprocess.Popen(args, stdout=f, stderr=f, env=env)
+    c = harness.Client(eps)
+    try:
+        s = continuous_bundle.states
+        assert c.put_samples("one", s[:5], [1, 2, 3, 4, 5]).WhichOneof("body") == "task"
+        assert c.put_samples("two", s[:5], [1, 2, 3, 4, 6]).WhichOneof("body") == "task"
+        harness.expect_error(c.put_samples("three", s[:5], [1, 2, 3, 4, 7]), "ETOOMANY", "put_task.name")
+    finally:
+        c.close()
+        os.kill(p.pid, 15)
+        assert p.wait(20) == 0
