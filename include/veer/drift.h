@@ -86,23 +86,23 @@ typedef struct veer_drift_training {
  * after creation. Errors: VEER_EINVAL (NULL), VEER_EFIELD ("stats": the bundle carries no
  * training statistics). Any thread. */
 struct veer_model_info;
-int veer_drift_training_from_model(const struct veer_model_info *info,
-                                   veer_drift_training *out, veer_error *err);
+int veer_drift_training_from_model(const struct veer_model_info *info, veer_drift_training *out,
+                                   veer_error *err);
 
 #define VEER_DRIFT_MAX_BINS 1024u
 #define VEER_DRIFT_MAX_WINDOW 1000000u
 #define VEER_DRIFT_MAX_DIM 65535u
 
 typedef struct veer_drift_config {
-    uint32_t window;         /* states in the sliding window (default 1000) */
-    double psi_floor;        /* floor on live bin shares (default 1e-4), in (0, 1/bins) */
-    double psi_watch_raise;  /* default 0.10 */
-    double psi_watch_clear;  /* default 0.08 */
-    double psi_alarm_raise;  /* default 0.25 */
-    double psi_alarm_clear;  /* default 0.20 */
-    double exceed_raise;     /* multiple of 1 % (default 3) */
-    double exceed_clear;     /* multiple of 1 % (default 2) */
-    uint32_t publish_every;  /* publish a snapshot every this many states (default 100) */
+    uint32_t window;        /* states in the sliding window (default 1000) */
+    double psi_floor;       /* floor on live bin shares (default 1e-4), in (0, 1/bins) */
+    double psi_watch_raise; /* default 0.10 */
+    double psi_watch_clear; /* default 0.08 */
+    double psi_alarm_raise; /* default 0.25 */
+    double psi_alarm_clear; /* default 0.20 */
+    double exceed_raise;    /* multiple of 1 % (default 3) */
+    double exceed_clear;    /* multiple of 1 % (default 2) */
+    uint32_t publish_every; /* publish a snapshot every this many states (default 100) */
 } veer_drift_config;
 
 /* Fills `cfg` with the defaults above. */
@@ -127,9 +127,9 @@ uint32_t veer_drift_state_dim(const veer_drift *d);
 #define VEER_DRIFT_CHANGED_FEATURE (1u << 2) /* some feature's PSI level changed */
 
 typedef struct veer_drift_result {
-    double mahalanobis;      /* this state's distance */
-    int out_of_coverage;     /* 1 when beyond the training p99.9 distance */
-    unsigned changed;        /* VEER_DRIFT_CHANGED_* bits; 0 when no level changed */
+    double mahalanobis;  /* this state's distance */
+    int out_of_coverage; /* 1 when beyond the training p99.9 distance */
+    unsigned changed;    /* VEER_DRIFT_CHANGED_* bits; 0 when no level changed */
 } veer_drift_result;
 
 /* Adds one state (state_dim floats) to the window, evicting the oldest when full, and
@@ -153,27 +153,27 @@ void veer_drift_reset(veer_drift *d);
  * reading (veer_drift_report_create does it), or NULL to skip that array. */
 typedef struct veer_drift_report {
     uint32_t state_dim;
-    uint32_t window;            /* configured size */
-    uint32_t fill;              /* states now in the window */
-    uint64_t states_total;      /* states added since creation or reset */
-    uint64_t out_of_coverage_total; /* of those, beyond the training p99.9 */
+    uint32_t window;                 /* configured size */
+    uint32_t fill;                   /* states now in the window */
+    uint64_t states_total;           /* states added since creation or reset */
+    uint64_t out_of_coverage_total;  /* of those, beyond the training p99.9 */
     uint32_t out_of_coverage_window; /* in the window */
 
-    double *psi;                /* per feature; 0 while the window is empty */
-    double *mean_shift;         /* per feature, in training standard deviations */
+    double *psi;                 /* per feature; 0 while the window is empty */
+    double *mean_shift;          /* per feature, in training standard deviations */
     veer_drift_level *psi_level; /* per feature */
-    double psi_max;             /* the largest PSI and its feature */
+    double psi_max;              /* the largest PSI and its feature */
     uint32_t psi_max_feature;
     veer_drift_level psi_overall; /* the highest feature level */
 
-    uint32_t exceed_count;      /* window states beyond the training p99 distance */
-    double exceed_rate;         /* exceed_count / fill (0 when empty) */
+    uint32_t exceed_count;         /* window states beyond the training p99 distance */
+    double exceed_rate;            /* exceed_count / fill (0 when empty) */
     veer_drift_level exceed_level; /* OK or ALARM */
 
-    veer_drift_level level;     /* max(psi_overall, exceed_level) */
-    uint64_t level_changes;     /* counts every change of any level: compare two reports to
-                                   tell whether something changed in between */
-    uint64_t publish_seq;       /* snapshots only: how many times the writer has published */
+    veer_drift_level level; /* max(psi_overall, exceed_level) */
+    uint64_t level_changes; /* counts every change of any level: compare two reports to
+                               tell whether something changed in between */
+    uint64_t publish_seq;   /* snapshots only: how many times the writer has published */
 } veer_drift_report;
 
 /* Allocates a report with its arrays sized for `d`; release with veer_drift_report_destroy. */

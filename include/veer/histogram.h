@@ -89,6 +89,10 @@ uint64_t veer_hist_overflow(const veer_hist *h);
 uint64_t veer_hist_min(const veer_hist *h);
 uint64_t veer_hist_max(const veer_hist *h);
 
+/* Sum of the values as recorded, in nanoseconds (a Prometheus histogram's _sum); it stops at
+ * UINT64_MAX instead of wrapping (veer_hist_record; the shared variant wraps). Any thread. */
+uint64_t veer_hist_sum(const veer_hist *h);
+
 /* Mean of the values as recorded, from a 64-bit sum of nanoseconds (exact while the recorded
  * total stays under 2^64 ns, 584 years). 0 when empty. Any thread. */
 double veer_hist_mean(const veer_hist *h);

@@ -35,19 +35,19 @@ struct veer_drift {
     veer_drift_config cfg;
 
     /* The window: a ring of `window` slots, each with the state, its bins and its flags. */
-    float *ring_states;     /* window x n */
-    uint16_t *ring_bins;    /* window x n */
-    uint8_t *ring_flags;    /* window */
-    uint32_t head, fill;    /* next slot to write; states in the window */
-    uint32_t *counts;       /* n x bins: window states per bin */
-    double *sums;           /* n: running sums of the window's values */
+    float *ring_states;  /* window x n */
+    uint16_t *ring_bins; /* window x n */
+    uint8_t *ring_flags; /* window */
+    uint32_t head, fill; /* next slot to write; states in the window */
+    uint32_t *counts;    /* n x bins: window states per bin */
+    double *sums;        /* n: running sums of the window's values */
     uint32_t exceed_count, ooc_count;
     uint64_t states_total, ooc_total;
     uint32_t since_recount;
 
     /* Levels and the incremental PSI (meaningful once the window is full). */
-    double *psi_term;       /* window + 1: PSI term of a bin holding c states */
-    double *psi_live;       /* n */
+    double *psi_term; /* window + 1: PSI term of a bin holding c states */
+    double *psi_live; /* n */
     veer_drift_level *psi_level;
     veer_drift_level psi_overall, exceed_level;
     uint64_t level_changes;
@@ -55,9 +55,9 @@ struct veer_drift {
 
     /* Publication (triple buffer). */
     veer_drift_report *slot[3];
-    unsigned back;              /* the writer's slot */
-    _Atomic unsigned middle;    /* slot index | VEER__FRESH */
-    unsigned front;             /* the readers' slot, under read_lock */
+    unsigned back;           /* the writer's slot */
+    _Atomic unsigned middle; /* slot index | VEER__FRESH */
+    unsigned front;          /* the readers' slot, under read_lock */
     uint64_t publish_seq;
     pthread_mutex_t read_lock;
 };
@@ -104,8 +104,10 @@ static int check_finite(const float *v, size_t count, const char *name, veer_err
         if (!isfinite(v[i])) {
             char field[48];
             snprintf(field, sizeof field, "%s[%zu]", name, i);
-            return veer__error_set(err, VEER_ENONFINITE, field, "%s is %g; training statistics "
-                                   "must be finite", field, (double)v[i]);
+            return veer__error_set(err, VEER_ENONFINITE, field,
+                                   "%s is %g; training statistics "
+                                   "must be finite",
+                                   field, (double)v[i]);
         }
     }
     return 0;
@@ -121,8 +123,10 @@ static int validate_training(const veer_drift_training *t, veer_error *err)
                                VEER_DRIFT_MAX_BINS);
     if (!t->mean || !t->cov || !t->precision || !t->quantile_edges)
         return veer__error_set(err, VEER_EINVAL,
-                               !t->mean ? "mean" : !t->cov ? "cov" : !t->precision ? "precision"
-                                                                              : "quantile_edges",
+                               !t->mean        ? "mean"
+                               : !t->cov       ? "cov"
+                               : !t->precision ? "precision"
+                                               : "quantile_edges",
                                "a training statistic is missing (NULL)");
     size_t n = t->state_dim, e = t->bins - 1u;
     int rc;
@@ -133,25 +137,31 @@ static int validate_training(const veer_drift_training *t, veer_error *err)
         return rc;
     for (size_t i = 0; i < n; i++) {
         if (t->cov[i * n + i] < 0.0f)
-            return veer__error_set(err, VEER_EFIELD, "cov", "cov[%zu,%zu] is %g; a variance "
-                                   "cannot be negative", i, i, (double)t->cov[i * n + i]);
+            return veer__error_set(err, VEER_EFIELD, "cov",
+                                   "cov[%zu,%zu] is %g; a variance "
+                                   "cannot be negative",
+                                   i, i, (double)t->cov[i * n + i]);
         double pii = t->precision[i * n + i];
         if (!(pii > 0.0))
-            return veer__error_set(err, VEER_EFIELD, "precision", "precision[%zu,%zu] is %g; "
-                                   "a precision matrix has a positive diagonal", i, i, pii);
+            return veer__error_set(err, VEER_EFIELD, "precision",
+                                   "precision[%zu,%zu] is %g; "
+                                   "a precision matrix has a positive diagonal",
+                                   i, i, pii);
         for (size_t j = 0; j < i; j++) {
             double a = t->precision[i * n + j], b = t->precision[j * n + i];
             double scale = sqrt(pii * (double)t->precision[j * n + j]);
             if (fabs(a - b) > 1e-3 * scale)
                 return veer__error_set(err, VEER_EFIELD, "precision",
                                        "precision[%zu,%zu] = %g but precision[%zu,%zu] = %g; the "
-                                       "matrix must be symmetric", i, j, a, j, i, b);
+                                       "matrix must be symmetric",
+                                       i, j, a, j, i, b);
         }
         for (size_t b = 1; b < e; b++)
             if (t->quantile_edges[i * e + b] < t->quantile_edges[i * e + b - 1])
                 return veer__error_set(err, VEER_EFIELD, "quantile_edges",
                                        "quantile_edges of feature %zu decrease at edge %zu; "
-                                       "edges must be non-decreasing", i, b);
+                                       "edges must be non-decreasing",
+                                       i, b);
     }
     if (!(t->mahalanobis_p99 > 0.0f) || !isfinite(t->mahalanobis_p99))
         return veer__error_set(err, VEER_EFIELD, "mahalanobis_p99",
@@ -160,8 +170,8 @@ static int validate_training(const veer_drift_training *t, veer_error *err)
     if (!(t->mahalanobis_p999 >= t->mahalanobis_p99) || !isfinite(t->mahalanobis_p999))
         return veer__error_set(err, VEER_EFIELD, "mahalanobis_p999",
                                "mahalanobis_p999 is %g; it must be finite and at least "
-                               "mahalanobis_p99 (%g)", (double)t->mahalanobis_p999,
-                               (double)t->mahalanobis_p99);
+                               "mahalanobis_p99 (%g)",
+                               (double)t->mahalanobis_p999, (double)t->mahalanobis_p99);
     return 0;
 }
 
@@ -171,8 +181,10 @@ static int validate_config(const veer_drift_config *c, uint32_t bins, veer_error
         return veer__error_set(err, VEER_EFIELD, "window", "window is %u; it must be 1..%u",
                                c->window, VEER_DRIFT_MAX_WINDOW);
     if (!(c->psi_floor > 0.0 && c->psi_floor < 1.0 / bins))
-        return veer__error_set(err, VEER_EFIELD, "psi_floor", "psi_floor is %g; it must lie in "
-                               "(0, 1/bins = %g)", c->psi_floor, 1.0 / bins);
+        return veer__error_set(err, VEER_EFIELD, "psi_floor",
+                               "psi_floor is %g; it must lie in "
+                               "(0, 1/bins = %g)",
+                               c->psi_floor, 1.0 / bins);
     const struct {
         const char *name;
         double v;
@@ -182,8 +194,7 @@ static int validate_config(const veer_drift_config *c, uint32_t bins, veer_error
     for (size_t i = 0; i < sizeof th / sizeof th[0]; i++)
         if (!(th[i].v > 0.0) || !isfinite(th[i].v))
             return veer__error_set(err, VEER_EFIELD, th[i].name,
-                                   "%s is %g; it must be positive and finite", th[i].name,
-                                   th[i].v);
+                                   "%s is %g; it must be positive and finite", th[i].name, th[i].v);
     if (!(c->psi_watch_clear < c->psi_watch_raise))
         return veer__error_set(err, VEER_EFIELD, "psi_watch_clear",
                                "psi_watch_clear (%g) must be below psi_watch_raise (%g)",
@@ -195,16 +206,16 @@ static int validate_config(const veer_drift_config *c, uint32_t bins, veer_error
     if (!(c->psi_alarm_clear < c->psi_alarm_raise && c->psi_alarm_clear >= c->psi_watch_clear))
         return veer__error_set(err, VEER_EFIELD, "psi_alarm_clear",
                                "psi_alarm_clear (%g) must lie in [psi_watch_clear (%g), "
-                               "psi_alarm_raise (%g))", c->psi_alarm_clear, c->psi_watch_clear,
-                               c->psi_alarm_raise);
+                               "psi_alarm_raise (%g))",
+                               c->psi_alarm_clear, c->psi_watch_clear, c->psi_alarm_raise);
     if (!(c->exceed_raise <= 100.0))
         return veer__error_set(err, VEER_EFIELD, "exceed_raise",
                                "exceed_raise is %g; a rate of %g %% can never be reached",
                                c->exceed_raise, c->exceed_raise);
     if (!(c->exceed_clear < c->exceed_raise))
         return veer__error_set(err, VEER_EFIELD, "exceed_clear",
-                               "exceed_clear (%g) must be below exceed_raise (%g)",
-                               c->exceed_clear, c->exceed_raise);
+                               "exceed_clear (%g) must be below exceed_raise (%g)", c->exceed_clear,
+                               c->exceed_raise);
     return 0;
 }
 
@@ -280,7 +291,8 @@ int veer_drift_create(const veer_drift_training *train, const veer_drift_config 
                       veer_drift **out, veer_error *err)
 {
     if (out == NULL || train == NULL)
-        return veer__error_set(err, VEER_EINVAL, out ? "train" : "out", "a required pointer is "
+        return veer__error_set(err, VEER_EINVAL, out ? "train" : "out",
+                               "a required pointer is "
                                "NULL");
     *out = NULL;
     veer_drift_config defaults;
@@ -316,8 +328,8 @@ int veer_drift_create(const veer_drift_training *train, const veer_drift_config 
     d->psi_level = veer__calloc(n, sizeof *d->psi_level);
     for (int i = 0; i < 3; i++)
         d->slot[i] = report_alloc(d->n);
-    if (!d->mean || !d->std || !d->precision || !d->diff || !d->edges || !d->ring_states || !d->ring_bins ||
-        !d->ring_flags || !d->counts || !d->sums || !d->psi_term || !d->psi_live ||
+    if (!d->mean || !d->std || !d->precision || !d->diff || !d->edges || !d->ring_states ||
+        !d->ring_bins || !d->ring_flags || !d->counts || !d->sums || !d->psi_term || !d->psi_live ||
         !d->psi_level || !d->slot[0] || !d->slot[1] || !d->slot[2])
         goto fail_alloc;
     if (pthread_mutex_init(&d->read_lock, NULL) != 0)
@@ -351,8 +363,10 @@ int veer_drift_create(const veer_drift_training *train, const veer_drift_config 
 
 fail_alloc:
     free_drift(d);
-    return veer__error_set(err, VEER_ENOMEM, "window", "cannot allocate a drift window of %zu "
-                           "states of %zu features", w, n);
+    return veer__error_set(err, VEER_ENOMEM, "window",
+                           "cannot allocate a drift window of %zu "
+                           "states of %zu features",
+                           w, n);
 }
 
 void veer_drift_destroy(veer_drift *d)
@@ -473,8 +487,7 @@ static void recount(veer_drift *d)
     d->since_recount = 0;
 }
 
-static veer_drift_level next_psi_level(const veer_drift_config *c, veer_drift_level cur,
-                                       double psi)
+static veer_drift_level next_psi_level(const veer_drift_config *c, veer_drift_level cur, double psi)
 {
     switch (cur) {
     case VEER_DRIFT_OK:
@@ -482,9 +495,9 @@ static veer_drift_level next_psi_level(const veer_drift_config *c, veer_drift_le
                : psi >= c->psi_watch_raise ? VEER_DRIFT_WATCH
                                            : VEER_DRIFT_OK;
     case VEER_DRIFT_WATCH:
-        return psi >= c->psi_alarm_raise   ? VEER_DRIFT_ALARM
-               : psi < c->psi_watch_clear  ? VEER_DRIFT_OK
-                                           : VEER_DRIFT_WATCH;
+        return psi >= c->psi_alarm_raise  ? VEER_DRIFT_ALARM
+               : psi < c->psi_watch_clear ? VEER_DRIFT_OK
+                                          : VEER_DRIFT_WATCH;
     case VEER_DRIFT_ALARM:
     default:
         return psi >= c->psi_alarm_clear   ? VEER_DRIFT_ALARM
@@ -529,7 +542,8 @@ static unsigned evaluate_levels(veer_drift *d)
 int veer_drift_add(veer_drift *d, const float *state, veer_drift_result *res, veer_error *err)
 {
     if (d == NULL || state == NULL)
-        return veer__error_set(err, VEER_EINVAL, d ? "state" : "monitor", "a required pointer "
+        return veer__error_set(err, VEER_EINVAL, d ? "state" : "monitor",
+                               "a required pointer "
                                "is NULL");
     int bad = first_nonfinite(state, d->n);
     if (bad >= 0) {
@@ -537,8 +551,10 @@ int veer_drift_add(veer_drift *d, const float *state, veer_drift_result *res, ve
             return VEER_ENONFINITE;
         char field[32];
         snprintf(field, sizeof field, "state[%d]", bad);
-        return veer__error_set(err, VEER_ENONFINITE, field, "state[%d] is %g; only finite "
-                               "states can be monitored", bad, (double)state[bad]);
+        return veer__error_set(err, VEER_ENONFINITE, field,
+                               "state[%d] is %g; only finite "
+                               "states can be monitored",
+                               bad, (double)state[bad]);
     }
 
     size_t n = d->n;
@@ -693,8 +709,8 @@ void veer_drift_publish(veer_drift *d)
     d->publish_seq++;
     veer_drift_read(d, d->slot[d->back]);
     /* Release: the report's contents are visible to the reader that takes this slot. */
-    unsigned old = atomic_exchange_explicit(&d->middle, d->back | VEER__FRESH,
-                                            memory_order_acq_rel);
+    unsigned old =
+        atomic_exchange_explicit(&d->middle, d->back | VEER__FRESH, memory_order_acq_rel);
     d->back = old & 3u;
     d->since_publish = 0;
 }

@@ -13,7 +13,8 @@ int veer_drift_training_from_model(const veer_model_info *info, veer_drift_train
         return veer__error_set(err, VEER_EINVAL, info ? "out" : "info",
                                "a required pointer is NULL");
     if (!info->has_stats)
-        return veer__error_set(err, VEER_EFIELD, "stats", "the model bundle carries no "
+        return veer__error_set(err, VEER_EFIELD, "stats",
+                               "the model bundle carries no "
                                "training-state statistics, so drift cannot be monitored");
     *out = (veer_drift_training){
         .state_dim = info->state_dim,

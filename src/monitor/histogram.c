@@ -133,7 +133,7 @@ void veer_hist_record_n(veer_hist *h, uint64_t value_ns, uint64_t n)
     bump(&h->counts[bucket_of(clamp_value(value_ns))], n);
 
     uint64_t s = rd(&h->sum), add = value_ns * n;
-    if (n != 0 && add / n != value_ns)
+    if (add / n != value_ns) /* saturate rather than wrap */
         add = UINT64_MAX;
     wr(&h->sum, s + add < s ? UINT64_MAX : s + add);
     if (value_ns < rd(&h->min))
@@ -158,14 +158,14 @@ void veer_hist_record_shared(veer_hist *h, uint64_t value_ns)
     atomic_fetch_add_explicit(&h->sum, value_ns, memory_order_relaxed);
 
     uint64_t cur = rd(&h->min);
-    while (value_ns < cur && !atomic_compare_exchange_weak_explicit(
-                                 &h->min, &cur, value_ns, memory_order_relaxed,
-                                 memory_order_relaxed)) {
+    while (value_ns < cur &&
+           !atomic_compare_exchange_weak_explicit(&h->min, &cur, value_ns, memory_order_relaxed,
+                                                  memory_order_relaxed)) {
     }
     cur = rd(&h->max);
-    while (value_ns > cur && !atomic_compare_exchange_weak_explicit(
-                                 &h->max, &cur, value_ns, memory_order_relaxed,
-                                 memory_order_relaxed)) {
+    while (value_ns > cur &&
+           !atomic_compare_exchange_weak_explicit(&h->max, &cur, value_ns, memory_order_relaxed,
+                                                  memory_order_relaxed)) {
     }
 }
 
@@ -239,6 +239,11 @@ uint64_t veer_hist_min(const veer_hist *h)
 uint64_t veer_hist_max(const veer_hist *h)
 {
     return rd(&h->max);
+}
+
+uint64_t veer_hist_sum(const veer_hist *h)
+{
+    return rd(&h->sum);
 }
 
 double veer_hist_mean(const veer_hist *h)

@@ -147,8 +147,8 @@ static void bench_histogram(int rounds)
     m = median(interval_ns, rounds);
     printf("  veer_hist_recorder_record         %6.2f ns/value  %5.2fx floor\n", m, m / fl);
     printf("  veer_hist_summarize (reader)      %6.2f us/call\n", median(summary_us, rounds));
-    printf("  recorded data: p50 %.1f us, p99 %.1f us, p99.9 %.1f us, max %.1f us\n",
-           s.p50 / 1e3, s.p99 / 1e3, s.p999 / 1e3, s.max / 1e3);
+    printf("  recorded data: p50 %.1f us, p99 %.1f us, p99.9 %.1f us, max %.1f us\n", s.p50 / 1e3,
+           s.p99 / 1e3, s.p999 / 1e3, s.max / 1e3);
     veer_hist_destroy(h);
     veer_hist_destroy(hs);
     veer_hist_destroy(interval);
@@ -205,8 +205,8 @@ static void bench_drift(uint32_t n, int rounds)
     }
     for (size_t k = 0; k < (size_t)STATES * n; k++)
         states[k] = (float)normal();
-    veer_drift_training t = {n,     mean, cov, cov, BINS, edges, sqrtf((float)n) + 2.33f,
-                             sqrtf((float)n) + 3.1f};
+    veer_drift_training t = {
+        n, mean, cov, cov, BINS, edges, sqrtf((float)n) + 2.33f, sqrtf((float)n) + 3.1f};
     veer_drift *d;
     veer_error err;
     if (veer_drift_create(&t, NULL, &d, &err) != 0) {
@@ -236,8 +236,8 @@ static void bench_drift(uint32_t n, int rounds)
         note_cpu();
     }
     double fl = median(floor_ns, rounds), a = median(add_ns, rounds), c = median(check_ns, rounds);
-    printf("drift, %2u features, %d bins, window 1000 (%d rounds of %d states)\n", n, BINS,
-           rounds, STATES);
+    printf("drift, %2u features, %d bins, window 1000 (%d rounds of %d states)\n", n, BINS, rounds,
+           STATES);
     printf("  floor: bare quadratic form        %7.1f ns/state\n", fl);
     printf("  veer_drift_add                    %7.1f ns/state  %5.2fx floor\n", a, a / fl);
     printf("  veer_drift_check (act path)       %7.1f ns/state  %5.2fx floor\n", c, c / fl);

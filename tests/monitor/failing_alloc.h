@@ -9,9 +9,9 @@
 
 #include "veer/alloc.h"
 
-static int fail_at = -1;     /* the 0-based allocation to fail; -1 fails none */
-static int alloc_calls = 0;  /* allocations attempted since the last reset */
-static int live_allocs = 0;  /* blocks handed out and not yet freed */
+static int fail_at = -1;    /* the 0-based allocation to fail; -1 fails none */
+static int alloc_calls = 0; /* allocations attempted since the last reset */
+static int live_allocs = 0; /* blocks handed out and not yet freed */
 
 static void *fail_malloc(size_t n)
 {
@@ -41,7 +41,6 @@ static void counting_free(void *p)
     free(p);
 }
 
-static const veer_allocator failing_alloc = {fail_malloc, fail_calloc, fail_realloc,
-                                             counting_free};
+static const veer_allocator failing_alloc = {fail_malloc, fail_calloc, fail_realloc, counting_free};
 
 #endif

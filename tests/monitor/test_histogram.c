@@ -73,9 +73,9 @@ static void test_clamp_min_max_mean(void **state)
 {
     veer_hist *h;
     assert_int_equal(veer_hist_create(&h), 0);
-    veer_hist_record(h, 5);                    /* below 1 µs */
-    veer_hist_record(h, 0);                    /* below */
-    veer_hist_record(h, 120000000000ull);      /* 120 s, above */
+    veer_hist_record(h, 5);               /* below 1 µs */
+    veer_hist_record(h, 0);               /* below */
+    veer_hist_record(h, 120000000000ull); /* 120 s, above */
     veer_hist_record(h, 2500);
     assert_int_equal(veer_hist_count(h), 4);
     assert_int_equal(veer_hist_underflow(h), 2);
@@ -83,6 +83,7 @@ static void test_clamp_min_max_mean(void **state)
     assert_int_equal(veer_hist_min(h), 0);
     assert_int_equal(veer_hist_max(h), 120000000000ull);
     assert_near(veer_hist_mean(h), (5.0 + 0 + 120e9 + 2500) / 4.0, 1e-3);
+    assert_int_equal(veer_hist_sum(h), 5 + 0 + 120000000000ull + 2500);
     assert_int_equal(veer_hist_count_le(h, veer_hist_bucket_ceiling(1000)), 2);
     /* The overflowed value sits in the last bucket; the maximum is reported exactly. */
     uint64_t v;
@@ -261,7 +262,8 @@ static void test_recorder_oom(void **state)
 }
 
 /* One writer records 1..N while a reader takes intervals; every value must land in exactly one
- * interval: the sum of interval counts is N and the merged intervals have min 1·1000, max N·1000. */
+ * interval: the sum of interval counts is N and the merged intervals have min 1·1000, max N·1000.
+ */
 enum { REC_N = 2000000 };
 static atomic_int writer_done, reader_started;
 static void *writer_main(void *arg)
