@@ -4,7 +4,8 @@
  *
  *   usage: client_probe ACT_ENDPOINT
  *   stdin: "act CHANNEL DEADLINE_US v1,v2,..."  -> {"rc":..,"flags":..,"seq":..,"action":[..],...}
- *          "stats"                               -> {"acts":..,"late_discarded":..,...}
+ *          "stats"                               -> {"acts":..,"late_discarded":..,
+ *                                                   "allocations": through libveer's hook}
  *          "quit"
  */
 #include <inttypes.h>
@@ -13,6 +14,13 @@
 #include <string.h>
 
 #include "veer/client.h"
+
+/* Every allocation libveer_client makes goes through veer_set_allocator's hook; counting them
+ * lets the test check that acting allocates nothing in our code. */
+static unsigned long long allocations;
+static void *count_malloc(size_t n) { allocations++; return malloc(n); }
+static void *count_calloc(size_t n, size_t s) { allocations++; return calloc(n, s); }
+static void *count_realloc(void *p, size_t n) { allocations++; return realloc(p, n); }
 
 static void print_floats(const float *v, uint32_t n)
 {
@@ -28,6 +36,8 @@ int main(int argc, char **argv)
         fprintf(stderr, "usage: client_probe ACT_ENDPOINT\n");
         return 2;
     }
+    veer_allocator counting = {count_malloc, count_calloc, count_realloc, free};
+    veer_set_allocator(&counting);
     veer_client_options o;
     veer_client_options_init(&o);
     o.act_endpoint = argv[1];
@@ -58,9 +68,10 @@ int main(int argc, char **argv)
             veer_hist_summarize(veer_client_act_histogram(c), &h);
             printf("{\"acts\":%" PRIu64 ",\"replies\":%" PRIu64 ",\"deadline_fallbacks\":%" PRIu64
                    ",\"late_discarded\":%" PRIu64 ",\"bad_replies\":%" PRIu64
-                   ",\"hist_count\":%" PRIu64 ",\"hist_max_ns\":%" PRIu64 "}\n",
+                   ",\"hist_count\":%" PRIu64 ",\"hist_max_ns\":%" PRIu64
+                   ",\"allocations\":%llu}\n",
                    s.acts, s.replies, s.deadline_fallbacks, s.late_discarded, s.bad_replies,
-                   h.count, h.max);
+                   h.count, h.max, allocations);
             fflush(stdout);
             continue;
         }

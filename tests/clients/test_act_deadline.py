@@ -16,7 +16,7 @@ import time
 import numpy as np
 import pytest
 
-from conftest import PROBE
+from conftest import PROBE, VEER
 from veer.client import Client, FALLBACK, DEADLINE
 
 MARGIN_NS = 500_000_000  # generous: shared machine; see the module docstring
@@ -101,6 +101,41 @@ def test_c_client_falls_back_while_veerd_is_stopped(armed):
     assert st["late_discarded"] == 3, st
     assert st["deadline_fallbacks"] == 3 and st["replies"] == 2, st
     assert st["hist_count"] == 5  # every call's round trip is in the histogram
+
+
+def test_c_client_act_allocates_nothing(armed):
+    """The act path's promise (include/veer/client.h): no allocation in our code per call,
+    counted through libveer's allocation hook (libzmq's own buffers do not go through it)."""
+    veerd, probe, d = armed
+    state = np.linspace(-1, 1, d)
+    probe.act("arm", 200000, state)
+    before = probe.stats()["allocations"]
+    for i in range(200):
+        r = probe.act("arm", 200000, state * (i % 7) / 7)
+        assert r["rc"] == 0 and not (r["flags"] & FALLBACK)
+    os.kill(veerd.proc.pid, signal.SIGSTOP)
+    try:
+        assert probe.act("arm", 5000, state)["flags"] & DEADLINE
+    finally:
+        os.kill(veerd.proc.pid, signal.SIGCONT)
+    time.sleep(0.2)
+    assert not (probe.act("arm", 200000, state)["flags"] & FALLBACK)  # discards the late one
+    assert probe.stats()["allocations"] == before
+
+
+def test_cli_reports_a_stopped_veerd_as_unreachable(armed):
+    veerd, probe, d = armed
+    os.kill(veerd.proc.pid, signal.SIGSTOP)
+    try:
+        r = subprocess.run([VEER, "act", "arm", ",".join(["0"] * d), "--timeout-ms", "300",
+                            "--json"], capture_output=True, text=True, env=veerd.env(),
+                           timeout=60)
+        s = subprocess.run([VEER, "status", "--timeout-ms", "300"], capture_output=True,
+                           text=True, env=veerd.env(), timeout=60)
+    finally:
+        os.kill(veerd.proc.pid, signal.SIGCONT)
+    assert r.returncode == 4 and json.loads(r.stdout)["error"]["name"] == "VEER_ETIMEDOUT"
+    assert s.returncode == 4 and "no answer from veerd" in s.stderr
 
 
 def test_python_client_falls_back_while_veerd_is_stopped(armed):

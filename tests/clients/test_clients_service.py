@@ -115,6 +115,10 @@ def test_switch_act_channels_status_and_drop(ctx):
     assert ch["name"] == "arm" and ch["task"] == "reach"
 
     state = rng.normal(size=b.model.state_dim).astype(np.float32)
+    # A channel nobody switched answers with the fallback action and says why (veerd's rule).
+    none = cli_json(veerd, "act", "conveyor", fmt(state))
+    assert set(none["flags"]) == {"fallback", "no_task"}, none
+    np.testing.assert_array_equal(np.float32(none["action"]), c.model.fallback_action)
     a = cli_json(veerd, "act", "arm", fmt(state))
     assert not (a["flag_bits"] & FALLBACK), a
     assert a["task"] == "reach" and a["epoch"] == ch["epoch"]
