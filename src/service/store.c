@@ -268,7 +268,11 @@ int veer__store_replay(void *ctx, const Veer__Journal__JournalRecord *rec)
 
 int veer__store_compact(veer__store *s, int force, veer_error *err)
 {
-    if (s->journal == NULL || (!force && veer__journal_size(s->journal) < s->journal_compact_bytes))
+    /* Past the threshold, compact only once the journal has doubled since the last compaction:
+     * when the live state alone is near the threshold, compacting after every append would
+     * rewrite everything each time. */
+    uint64_t size = s->journal ? veer__journal_size(s->journal) : 0;
+    if (s->journal == NULL || (!force && (size < s->journal_compact_bytes || size < 2 * s->journal_live_bytes)))
         return 0;
     uint64_t before = veer__journal_size(s->journal);
     int rc = veer__journal_compact_begin(s->journal, err);
@@ -299,6 +303,8 @@ int veer__store_compact(veer__store *s, int force, veer_error *err)
         rc = veer__journal_compact_commit(s->journal, err);
     else
         veer__journal_compact_abort(s->journal);
+    if (rc == 0)
+        s->journal_live_bytes = veer__journal_size(s->journal);
     if (rc == 0)
         veer__log_info("journal compacted from %llu to %llu bytes", (unsigned long long)before,
                        (unsigned long long)veer__journal_size(s->journal));

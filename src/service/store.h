@@ -24,6 +24,7 @@ typedef struct veer__store {
     veer__events *events;   /* NULL until the sockets are up */
     uint32_t max_samples;
     uint64_t journal_compact_bytes;
+    uint64_t journal_live_bytes; /* size right after the last compaction */
 } veer__store;
 
 /* Checks `spec` and encodes it against `bundle` into z (z_dim floats). Pure: touches nothing but
@@ -51,7 +52,8 @@ int veer__store_switch(veer__store *s, const char *channel, const char *name, ve
 int veer__store_replay(void *ctx, const Veer__Journal__JournalRecord *rec);
 
 /* Rewrites the journal with the live tasks and the channels' current tasks when it has grown
- * past journal_compact_bytes (or always, with force). 0, or the journal's error (the old
+ * past journal_compact_bytes and to twice its size after the last compaction (or always, with
+ * force). 0, or the journal's error (the old
  * journal then stays in use). */
 int veer__store_compact(veer__store *s, int force, veer_error *err);
 

@@ -48,9 +48,12 @@ def endpoints(kind: str, tmp) -> dict:
 class Veerd:
     """One veerd process. `log` is its stderr, read back as text."""
 
+    started = 0
+
     def __init__(self, bundle, state_dir, eps: dict, extra=(), env=None, log_path=None):
         self.eps = eps
-        self.log_path = log_path or os.path.join(str(state_dir) + ".log")
+        Veerd.started += 1
+        self.log_path = log_path or f"{state_dir}.{Veerd.started}.log"
         args = [VEERD, "--bundle", str(bundle), "--state-dir", str(state_dir), "--act", eps["act"],
                 "--admin", eps["admin"], "--events", eps["events"], *extra]
         self.logf = open(self.log_path, "ab")
