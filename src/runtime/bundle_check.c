@@ -40,9 +40,11 @@ static int check_finite(const float *x, size_t n, const char *path, veer_error *
     return 0;
 }
 
-/* The layers of one branch or head, starting from `width` inputs; *out gets the final width. */
+/* The layers of one branch or head, starting from `width` inputs; *out gets the final width.
+ * An embedding looks rows up by index, so it may only be the first layer of a branch whose
+ * inputs are all indices (state features, or the discrete action as_index): `index_inputs`. */
 static int check_layers(Veer__Bundle__Layer *const *layers, size_t count, uint32_t width,
-                        const char *path, uint32_t *out, veer_error *err)
+                        int index_inputs, const char *path, uint32_t *out, veer_error *err)
 {
     char f[VEER_ERROR_FIELD_MAX], p[VEER_ERROR_FIELD_MAX];
     if (count > VEER__MAX_LAYERS)
@@ -73,6 +75,11 @@ static int check_layers(Veer__Bundle__Layer *const *layers, size_t count, uint32
                                        l->n_bias, outd);
             break;
         case VEER__BUNDLE__LAYER_KIND__LAYER_EMBEDDING: {
+            if (i != 0 || !index_inputs)
+                return veer__error_set(err, VEER_EFIELD, FIELD(f, "%s.kind", p),
+                                       "%s is an embedding; it must be the first layer of a "
+                                       "branch that reads only state features or the action "
+                                       "as_index", p);
             if (l->n_counts != in)
                 return veer__error_set(err, VEER_EFIELD, FIELD(f, "%s.counts", p),
                                        "%s.counts has %zu values; it needs one per input (%zu)",
@@ -237,7 +244,13 @@ static int check_net(const Veer__Bundle__Network *net, const char *name,
         FIELD(p, "%s.branches[%zu]", name, b);
         if ((rc = check_inputs(br, p, m, role, &reads_action, &reads_task, &width, err)) != 0)
             return rc;
-        if ((rc = check_layers(br->layers, br->n_layers, width, FIELD(f, "%s.layers", p),
+        int index_inputs = 1;
+        for (size_t i = 0; i < br->n_inputs; i++)
+            index_inputs &= br->inputs[i]->kind == VEER__BUNDLE__INPUT_KIND__INPUT_STATE ||
+                            (br->inputs[i]->kind == VEER__BUNDLE__INPUT_KIND__INPUT_ACTION &&
+                             br->inputs[i]->as_index);
+        if ((rc = check_layers(br->layers, br->n_layers, width, index_inputs,
+                               FIELD(f, "%s.layers", p),
                                &outs[b], err)) != 0)
             return rc;
         total += outs[b];
@@ -296,7 +309,7 @@ static int check_net(const Veer__Bundle__Network *net, const char *name,
     }
 
     uint32_t out;
-    if ((rc = check_layers(net->head, net->n_head, merged, FIELD(p, "%s.head", name), &out,
+    if ((rc = check_layers(net->head, net->n_head, merged, 0, FIELD(p, "%s.head", name), &out,
                            err)) != 0)
         return rc;
     if (out != want) {

@@ -12,6 +12,7 @@
 #include "veer/runtime.h"
 
 #define VEER__MAX_BATCH (1u << 20)
+#define VEER__MAX_ROWS (1u << 24)
 
 /* Floats rounded up to whole 64-byte lines, so every piece of the block stays aligned. */
 static size_t lines(size_t floats) { return (floats + 15) & ~(size_t)15; }
@@ -30,6 +31,10 @@ int veer_workspace_create(const veer_bundle *bundle, uint32_t max_batch, veer_wo
     const veer_model_info *info = &bundle->info;
     size_t per_state = info->action_kind == VEER_ACTION_DISCRETE ? info->action_count : 1;
     size_t f_rows = (size_t)max_batch * per_state;
+    if (f_rows > VEER__MAX_ROWS) /* OpenBLAS takes row counts as int */
+        return veer__error_set(err, VEER_EINVAL, "max_batch",
+                               "max_batch x action_count is %zu rows; at most %u", f_rows,
+                               VEER__MAX_ROWS);
     size_t sizes[3] = {0, 0, 0};
     veer__net_buf_sizes(&bundle->forward, f_rows, sizes);
     veer__net_buf_sizes(&bundle->backward, max_batch, sizes);

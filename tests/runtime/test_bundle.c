@@ -175,6 +175,17 @@ static void m_b_action(Veer__Bundle__Model *m)
     m->backward->branches[0]->inputs[0]->n_features = 0;
 }
 
+static Veer__Bundle__Layer *ones_embedding(uint32_t in, uint32_t out)
+{
+    uint32_t counts[16];
+    for (uint32_t i = 0; i < in; i++)
+        counts[i] = 1;
+    return fx_embedding(in, counts, out);
+}
+/* Embeddings look rows up by index: never in a head, never fed by z. */
+static void m_embed_head(Veer__Bundle__Model *m) { m->forward->head[0] = ones_embedding(16, 16); }
+static void m_embed_task(Veer__Bundle__Model *m) { m->actor->branches[0]->layers[0] = ones_embedding(7, 6); }
+
 static void test_rejections(void **state)
 {
     (void)state;
@@ -201,6 +212,8 @@ static void test_rejections(void **state)
         {m_eps, VEER_EFIELD, "forward.head[0].eps"},
         {m_merge, VEER_EFIELD, "forward.merge"},
         {m_b_action, VEER_EFIELD, "backward.branches[0].inputs[0].kind"},
+        {m_embed_head, VEER_EFIELD, "forward.head[0].kind"},
+        {m_embed_task, VEER_EFIELD, "actor.branches[0].layers[0].kind"},
     };
     for (size_t i = 0; i < sizeof cases / sizeof cases[0]; i++) {
         fx_srand(13);
