@@ -213,3 +213,32 @@ def test_info_matches_file(case):
     assert np.max(np.abs(prec - p_ref)) / np.abs(p_ref).max() < 1e-4
     if m.task_defaults.rescale_norm == 0:
         assert info.rescale_norm == pytest.approx(np.sqrt(m.z_dim), rel=1e-6)
+
+
+def test_bad_inputs_refused(lib):
+    """Inputs the reference cannot give a meaning to are refused, not computed: an embedding
+    index outside [0, count) or not an integer (runtime.h: VEER_EINVAL from the eval calls),
+    and a non-finite state or z in veer_act (VEER_ENONFINITE, nothing written)."""
+    lay = synth.make_layout(kind="discrete", state_dim=9, z_dim=16, action_count=4,
+                            b_features=[0, 2, 5, 7, 8], embed_state=[7, 8],
+                            state_counts=[4, 5], embed_action=True)
+    m, _, states = synth.build_random(lay, rng_key=21, n_states=300, embed_state=[7, 8],
+                                      state_counts=[4, 5])
+    bundle = vb.read_bundle(vb.pack_bundle(m))
+    with veerlib.Runtime(lib, vb.pack_bundle(m)) as rt:
+        s = states[:2].astype(np.float64)
+        np.testing.assert_allclose(rt.B(s), bundle.B(s), rtol=0, atol=REL * np.abs(bundle.B(s)).max())
+        for bad in (4.0, 5.0, -1.0, 1.5, np.nan):
+            t = s.copy()
+            t[0, 7 if bad != 5.0 else 8] = bad
+            with pytest.raises(RuntimeError, match="VEER_EINVAL|VEER_ENONFINITE"):
+                rt.B(t)
+        z = np.ones((1, 16))
+        for bad in (4.0, -1.0, 0.5):
+            with pytest.raises(RuntimeError, match="VEER_EINVAL|VEER_ENONFINITE"):
+                rt.F(s[:1], np.array([[bad]]), z)
+        for where in ("state", "z"):
+            st, zz = s[0].copy(), z[0].copy()
+            (st if where == "state" else zz)[1] = np.nan
+            rc, a, v, fl = rt.act(st, zz)
+            assert rc == veerlib.CODES["ENONFINITE"] and a[0] == veerlib.UNWRITTEN

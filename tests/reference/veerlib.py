@@ -51,6 +51,7 @@ class TaskReport(C.Structure):
     _fields_ = [("r2", C.c_double), ("norm_raw", C.c_double), ("mean_reward", C.c_double)]
 
 
+UNWRITTEN = -7777.0
 TASK_SAMPLES, TASK_GOALS, TASK_REFERENCE = 1, 2, 3
 ACT_CLIPPED, ACT_FALLBACK, ACT_NONFINITE = 1, 2, 4
 
@@ -176,7 +177,7 @@ class Runtime:
 
     def act(self, state, z):
         s, zz = f32(state), f32(z)
-        a = np.zeros(self.adim, np.float32)
+        a = np.full(self.adim, UNWRITTEN, np.float32)  # to see whether libveer wrote it
         v = C.c_float()
         fl = C.c_uint32()
         rc = self.lib.veer_act(self.ws, ptr(s), ptr(zz), ptr(a), C.byref(v), C.byref(fl))
