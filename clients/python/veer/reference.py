@@ -97,7 +97,7 @@ def apply_layer(layer: LayerSpec, x: np.ndarray) -> np.ndarray:
         return np.tanh(x)
     if layer.kind == LAYER_NORM:
         # y = gain * (x - mean) / sqrt(var + eps) + bias, mean and (biased) variance over the
-        # features of each row (Ba, Kiros & Hinton 2016, "Layer Normalization", eq. 4).
+        # features of each row (Ba, Kiros & Hinton 2016, "Layer Normalization"; from memory).
         mu = x.mean(axis=1, keepdims=True)
         var = ((x - mu) ** 2).mean(axis=1, keepdims=True)
         y = (x - mu) / np.sqrt(var + float(layer.eps))
