@@ -138,7 +138,8 @@ typedef struct veer_drift_result {
  * the O(state_dim²) distance; an exact recount from the window every `window` states stops the
  * running sums from accumulating rounding error (amortised O(state_dim + bins) more).
  * Errors: VEER_ENONFINITE when the state holds NaN or infinity (field "state[i]"; the state is
- * not added), VEER_EINVAL for NULL pointers. The writer thread; allocates nothing. */
+ * not added), VEER_EINVAL for NULL pointers. The writer thread; allocates nothing. On an act
+ * path pass `err` NULL: filling it formats a message. */
 int veer_drift_add(veer_drift *d, const float *state, veer_drift_result *res, veer_error *err);
 
 /* Is `state` beyond the training 99.9th percentile Mahalanobis distance? Returns 1 (out of

@@ -22,7 +22,7 @@
 
 #include "base/base.h"
 
-#define VEER_DRIFT_MAX_DIM_STACK 512u /* veer_drift_check's stack buffer: 4 KiB */
+#define VEER__CHECK_STACK_DIM 512u /* veer_drift_check's stack buffer: 4 KiB */
 #define VEER__FRESH 4u /* in `middle`: the middle slot holds a report no reader has taken */
 
 struct veer_drift {
@@ -443,9 +443,9 @@ int veer_drift_check(const veer_drift *d, const float *state, double *distance)
     if (first_nonfinite(state, d->n) >= 0)
         return VEER_ENONFINITE;
     /* Any thread may call this, so the differences go on this thread's stack. */
-    double diff[VEER_DRIFT_MAX_DIM_STACK];
-    double m2 = d->n <= VEER_DRIFT_MAX_DIM_STACK ? mahalanobis_sq(d, state, diff)
-                                                 : mahalanobis_sq_unbuffered(d, state);
+    double diff[VEER__CHECK_STACK_DIM];
+    double m2 = d->n <= VEER__CHECK_STACK_DIM ? mahalanobis_sq(d, state, diff)
+                                              : mahalanobis_sq_unbuffered(d, state);
     if (distance != NULL)
         *distance = sqrt(m2);
     return m2 > d->p999_sq;

@@ -201,6 +201,45 @@ static void test_snapshot_concurrent(void **state)
     veer_drift_destroy(shared_drift);
 }
 
+/* A state wider than veer_drift_check's stack buffer (512 features) takes the unbuffered path;
+ * its distance must equal the one veer_drift_add computes with the writer's buffer, and the
+ * closed form for a diagonal precision: sqrt(Σ p_i (x_i − μ_i)²). */
+static void test_wide_state(void **state)
+{
+    enum { N = 700 };
+    float *mean = calloc(N, sizeof(float)), *cov = calloc((size_t)N * N, sizeof(float));
+    float *prec = calloc((size_t)N * N, sizeof(float)), *edges = calloc(N, sizeof(float));
+    float *x = malloc(N * sizeof(float));
+    double want = 0.0;
+    for (int i = 0; i < N; i++) {
+        mean[i] = (float)(i % 7) * 0.25f;
+        cov[i * N + i] = 2.0f;
+        prec[i * N + i] = 0.5f;
+        edges[i] = mean[i];
+        x[i] = mean[i] + (float)((i % 5) - 2) * 0.5f;
+        want += 0.5 * ((double)x[i] - mean[i]) * ((double)x[i] - mean[i]);
+    }
+    want = sqrt(want);
+    veer_drift_training t = {N, mean, cov, prec, 2, edges, 40.0f, 50.0f};
+    veer_drift_config cfg;
+    veer_drift_config_init(&cfg);
+    cfg.window = 4;
+    veer_drift *d;
+    assert_int_equal(veer_drift_create(&t, &cfg, &d, NULL), 0);
+    double got;
+    assert_int_equal(veer_drift_check(d, x, &got), 0);
+    assert_near(got, want, 1e-9 * want);
+    veer_drift_result res;
+    assert_int_equal(veer_drift_add(d, x, &res, NULL), 0);
+    assert_near(res.mahalanobis, want, 1e-9 * want);
+    veer_drift_destroy(d);
+    free(mean);
+    free(cov);
+    free(prec);
+    free(edges);
+    free(x);
+}
+
 int main(void)
 {
     const struct CMUnitTest tests[] = {
@@ -208,6 +247,7 @@ int main(void)
         cmocka_unit_test(test_bad_arguments),
         cmocka_unit_test(test_create_oom),
         cmocka_unit_test(test_snapshot_concurrent),
+        cmocka_unit_test(test_wide_state),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }
