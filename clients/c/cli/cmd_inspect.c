@@ -69,23 +69,34 @@ static int inspect_file_read(const char *path, const veer_model_info *info, insp
 static const char *layer_kind_name(int kind)
 {
     switch (kind) {
-    case VEER__BUNDLE__LAYER_KIND__LAYER_LINEAR: return "linear";
-    case VEER__BUNDLE__LAYER_KIND__LAYER_EMBEDDING: return "embedding";
-    case VEER__BUNDLE__LAYER_KIND__LAYER_RELU: return "relu";
-    case VEER__BUNDLE__LAYER_KIND__LAYER_TANH: return "tanh";
-    case VEER__BUNDLE__LAYER_KIND__LAYER_LAYER_NORM: return "layer_norm";
-    case VEER__BUNDLE__LAYER_KIND__LAYER_RESCALE_NORM: return "rescale_norm";
-    default: return "unset";
+    case VEER__BUNDLE__LAYER_KIND__LAYER_LINEAR:
+        return "linear";
+    case VEER__BUNDLE__LAYER_KIND__LAYER_EMBEDDING:
+        return "embedding";
+    case VEER__BUNDLE__LAYER_KIND__LAYER_RELU:
+        return "relu";
+    case VEER__BUNDLE__LAYER_KIND__LAYER_TANH:
+        return "tanh";
+    case VEER__BUNDLE__LAYER_KIND__LAYER_LAYER_NORM:
+        return "layer_norm";
+    case VEER__BUNDLE__LAYER_KIND__LAYER_RESCALE_NORM:
+        return "rescale_norm";
+    default:
+        return "unset";
     }
 }
 
 static const char *input_kind_name(int kind)
 {
     switch (kind) {
-    case VEER__BUNDLE__INPUT_KIND__INPUT_STATE: return "state";
-    case VEER__BUNDLE__INPUT_KIND__INPUT_ACTION: return "action";
-    case VEER__BUNDLE__INPUT_KIND__INPUT_TASK: return "task";
-    default: return "unset";
+    case VEER__BUNDLE__INPUT_KIND__INPUT_STATE:
+        return "state";
+    case VEER__BUNDLE__INPUT_KIND__INPUT_ACTION:
+        return "action";
+    case VEER__BUNDLE__INPUT_KIND__INPUT_TASK:
+        return "task";
+    default:
+        return "unset";
     }
 }
 
@@ -125,8 +136,8 @@ static void print_layers(const char *label, Veer__Bundle__Layer *const *layers, 
 {
     printf("    %s", label);
     for (size_t i = 0; i < n; i++)
-        printf("%s%s(%u->%u)", i ? " -> " : "", layer_kind_name(layers[i]->kind),
-               layers[i]->in_dim, layers[i]->out_dim);
+        printf("%s%s(%u->%u)", i ? " -> " : "", layer_kind_name(layers[i]->kind), layers[i]->in_dim,
+               layers[i]->out_dim);
     printf("%s\n", n ? "" : "(none)");
 }
 
@@ -337,13 +348,15 @@ static cJSON *json_summary(const char *path, const veer_model_info *info, const 
     cJSON_AddStringToObject(act, "kind", continuous ? "continuous" : "discrete");
     cJSON_AddNumberToObject(act, "dim", info->action_dim);
     cJSON_AddNumberToObject(act, "count", info->action_count);
-    cJSON_AddItemToObject(act, "low", json_floats(info->action_low, continuous ? info->action_dim : 0));
+    cJSON_AddItemToObject(act, "low",
+                          json_floats(info->action_low, continuous ? info->action_dim : 0));
     cJSON_AddItemToObject(act, "high",
                           json_floats(info->action_high, continuous ? info->action_dim : 0));
     cJSON *names = cJSON_AddArrayToObject(act, "names");
     for (size_t i = 0; i < m->action->n_names; i++)
         cJSON_AddItemToArray(names, cJSON_CreateString(m->action->names[i]));
-    cJSON_AddItemToObject(o, "fallback_action", json_floats(info->fallback_action, info->action_dim));
+    cJSON_AddItemToObject(o, "fallback_action",
+                          json_floats(info->fallback_action, info->action_dim));
     cJSON_AddBoolToObject(o, "actor_normalized", m->actor_normalized);
 
     cJSON *td = cJSON_AddObjectToObject(o, "task_defaults");
@@ -400,8 +413,8 @@ static int print_json(cJSON *o)
  * JSON object on stdout with --json so a script never has to parse the sentence. */
 static int refuse(const char *path, int rc, const veer_error *err, int json)
 {
-    fprintf(stderr, "veer inspect: %s: %s in field '%s': %s\n", path, veer_errname(rc),
-            err->field, err->message[0] ? err->message : veer_strerror(rc));
+    fprintf(stderr, "veer inspect: %s: %s in field '%s': %s\n", path, veer_errname(rc), err->field,
+            err->message[0] ? err->message : veer_strerror(rc));
     if (json) {
         cJSON *o = cJSON_CreateObject();
         cJSON *e = cJSON_AddObjectToObject(o, "error");
@@ -417,12 +430,13 @@ static int refuse(const char *path, int rc, const veer_error *err, int json)
 
 static void usage(FILE *to)
 {
-    fprintf(to, "usage: veer inspect BUNDLE [--json]\n"
-                "Validates a model bundle with libveer and describes it: dimensions, actions and\n"
-                "bounds, fallback, features (and which ones B reads), networks with layer shapes,\n"
-                "task defaults, drift statistics, reference set, provenance.\n"
-                "  --json   one JSON object instead of text\n"
-                "Exit 3 when the file is not a valid bundle (the error code and field are printed).\n");
+    fprintf(to,
+            "usage: veer inspect BUNDLE [--json]\n"
+            "Validates a model bundle with libveer and describes it: dimensions, actions and\n"
+            "bounds, fallback, features (and which ones B reads), networks with layer shapes,\n"
+            "task defaults, drift statistics, reference set, provenance.\n"
+            "  --json   one JSON object instead of text\n"
+            "Exit 3 when the file is not a valid bundle (the error code and field are printed).\n");
 }
 
 static int run(int argc, char **argv)
