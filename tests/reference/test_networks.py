@@ -242,3 +242,45 @@ def test_bad_inputs_refused(lib):
             (st if where == "state" else zz)[1] = np.nan
             rc, a, v, fl = rt.act(st, zz)
             assert rc == veerlib.CODES["ENONFINITE"] and a[0] == veerlib.UNWRITTEN
+
+
+def test_one_bundle_shared_by_threads(lib):
+    """runtime.h: a bundle is immutable and may be shared; each thread acts through its own
+    workspace. Two threads (ctypes releases the GIL during each call) act 300 times each on
+    one bundle and must give exactly the answers a single thread gives."""
+    import ctypes as C
+    import threading
+    m, _, states = synth.build_random(synth.preset_layout("continuous"), rng_key=22,
+                                      n_states=300)
+    data = vb.pack_bundle(m)
+    with veerlib.Runtime(lib, data, max_batch=8) as rt:
+        s = states[:24]
+        zs = [rt.B(states[i:i + 1])[0] for i in range(4)]
+        want = [rt.act_batch(s, z) for z in zs]
+        errors, done = [], []
+
+        def worker(k):
+            ws = C.c_void_p()
+            err = veerlib.VeerError()
+            if lib.veer_workspace_create(rt.bundle, 8, C.byref(ws), C.byref(err)) != 0:
+                errors.append((k, "workspace", err.message))
+                return
+            other = veerlib.Runtime.__new__(veerlib.Runtime)
+            other.lib, other.ws, other.adim, other.z_dim = lib, ws, rt.adim, rt.z_dim
+            try:
+                for i in range(300):
+                    j = (i + k) % 4
+                    a, v, fl = other.act_batch(s, zs[j])
+                    if not (np.array_equal(a, want[j][0]) and np.array_equal(v, want[j][1])):
+                        errors.append((k, i))
+                    done.append(1)
+            finally:
+                lib.veer_workspace_destroy(ws)
+
+        threads = [threading.Thread(target=worker, args=(k,)) for k in range(2)]
+        for t in threads:
+            t.start()
+        for t in threads:
+            t.join(timeout=120)
+        assert not errors, errors[:5]
+        assert len(done) == 600
