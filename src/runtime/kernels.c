@@ -95,22 +95,34 @@ void veer__k_tanh(size_t count, float *x)
     }
 }
 
+/* Σ (x_i - shift)^p for p = 1 or 2, in double with four independent partial sums: one chain of
+ * dependent additions would cost a full add latency per element. */
+static double sum_pow(const float *x, uint32_t n, double shift, int squared)
+{
+    double s[4] = {0.0, 0.0, 0.0, 0.0};
+    uint32_t i = 0;
+    for (; i + 4 <= n; i += 4)
+        for (int k = 0; k < 4; k++) {
+            double d = x[i + k] - shift;
+            s[k] += squared ? d * d : d;
+        }
+    for (; i < n; i++) {
+        double d = x[i] - shift;
+        s[0] += squared ? d * d : d;
+    }
+    return (s[0] + s[1]) + (s[2] + s[3]);
+}
+
 void veer__k_layer_norm(size_t n, uint32_t dim, const float *x, const float *gain,
                         const float *bias, float eps, float *y)
 {
     for (size_t r = 0; r < n; r++) {
         const float *xr = x + r * dim;
         float *yr = y + r * dim;
-        double sum = 0.0;
-        for (uint32_t i = 0; i < dim; i++)
-            sum += xr[i];
-        double mean = sum / dim;
-        double ss = 0.0;
-        for (uint32_t i = 0; i < dim; i++) {
-            double d = xr[i] - mean;
-            ss += d * d;
-        }
-        double inv = 1.0 / sqrt(ss / dim + (double)eps);
+        double mean = sum_pow(xr, dim, 0.0, 0) / dim;
+        /* Two passes (mean, then squared deviations) rather than E[x^2] - mean^2, which
+         * cancels badly when the mean is large against the spread. */
+        double inv = 1.0 / sqrt(sum_pow(xr, dim, mean, 1) / dim + (double)eps);
         for (uint32_t i = 0; i < dim; i++) {
             double v = (xr[i] - mean) * inv;
             if (gain != NULL)
@@ -127,9 +139,7 @@ size_t veer__k_rescale_norm(size_t n, uint32_t dim, float norm, float *x)
     size_t degenerate = 0;
     for (size_t r = 0; r < n; r++) {
         float *xr = x + r * dim;
-        double ss = 0.0;
-        for (uint32_t i = 0; i < dim; i++)
-            ss += (double)xr[i] * xr[i];
+        double ss = sum_pow(xr, dim, 0.0, 1);
         if (ss == 0.0) {
             memset(xr, 0, (size_t)dim * sizeof *xr);
             degenerate++;
