@@ -94,6 +94,27 @@ class Veerd:
         e.pop("VEER_KEY", None)
         return e
 
+    def pause(self):
+        """SIGSTOP, then wait until every thread is really stopped: kill() returns before the
+        signal has reached threads running on the other core, which could still answer."""
+        os.kill(self.proc.pid, signal.SIGSTOP)
+        end = time.monotonic() + 10
+        while time.monotonic() < end:
+            states = []
+            for t in os.listdir(f"/proc/{self.proc.pid}/task"):
+                try:
+                    with open(f"/proc/{self.proc.pid}/task/{t}/stat") as f:
+                        states.append(f.read().rsplit(")", 1)[1].split()[0])
+                except FileNotFoundError:
+                    pass
+            if states and all(st in "Tt" for st in states):
+                return
+            time.sleep(0.001)
+        raise RuntimeError("veerd did not stop within 10 s of SIGSTOP")
+
+    def resume(self):
+        os.kill(self.proc.pid, signal.SIGCONT)
+
     def stop(self):
         if self.proc.poll() is None:
             os.kill(self.proc.pid, signal.SIGCONT)  # in case a test left it stopped

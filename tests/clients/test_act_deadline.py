@@ -9,7 +9,6 @@ this is a correctness test, not a benchmark: the property checked is "returned, 
 never a latency figure (tests/bench measures those)."""
 import json
 import os
-import signal
 import subprocess
 import time
 
@@ -77,11 +76,11 @@ def test_c_client_falls_back_while_veerd_is_stopped(armed):
     assert live["rc"] == 0 and not (live["flags"] & FALLBACK), live
     assert live["task"] == "reach"
 
-    os.kill(veerd.proc.pid, signal.SIGSTOP)
+    veerd.pause()
     try:
         stopped = [probe.act("arm", 20000, state) for _ in range(3)]
     finally:
-        os.kill(veerd.proc.pid, signal.SIGCONT)
+        veerd.resume()
     for r in stopped:
         assert r["rc"] == 0
         assert r["flags"] & FALLBACK and r["flags"] & DEADLINE, r
@@ -113,11 +112,11 @@ def test_c_client_act_allocates_nothing(armed):
     for i in range(200):
         r = probe.act("arm", 200000, state * (i % 7) / 7)
         assert r["rc"] == 0 and not (r["flags"] & FALLBACK)
-    os.kill(veerd.proc.pid, signal.SIGSTOP)
+    veerd.pause()
     try:
         assert probe.act("arm", 5000, state)["flags"] & DEADLINE
     finally:
-        os.kill(veerd.proc.pid, signal.SIGCONT)
+        veerd.resume()
     time.sleep(0.2)
     assert not (probe.act("arm", 200000, state)["flags"] & FALLBACK)  # discards the late one
     assert probe.stats()["allocations"] == before
@@ -125,7 +124,7 @@ def test_c_client_act_allocates_nothing(armed):
 
 def test_cli_reports_a_stopped_veerd_as_unreachable(armed):
     veerd, probe, d = armed
-    os.kill(veerd.proc.pid, signal.SIGSTOP)
+    veerd.pause()
     try:
         r = subprocess.run([VEER, "act", "arm", ",".join(["0"] * d), "--timeout-ms", "300",
                             "--json"], capture_output=True, text=True, env=veerd.env(),
@@ -133,7 +132,7 @@ def test_cli_reports_a_stopped_veerd_as_unreachable(armed):
         s = subprocess.run([VEER, "status", "--timeout-ms", "300"], capture_output=True,
                            text=True, env=veerd.env(), timeout=60)
     finally:
-        os.kill(veerd.proc.pid, signal.SIGCONT)
+        veerd.resume()
     assert r.returncode == 4 and json.loads(r.stdout)["error"]["name"] == "VEER_ETIMEDOUT"
     assert s.returncode == 4 and "no answer from veerd" in s.stderr
 
@@ -144,11 +143,11 @@ def test_python_client_falls_back_while_veerd_is_stopped(armed):
         state = np.zeros(d, np.float32)
         live = c.act("arm", state, deadline_us=200000)
         assert not live.fallback
-        os.kill(veerd.proc.pid, signal.SIGSTOP)
+        veerd.pause()
         try:
             r = c.act("arm", state, deadline_us=20000)
         finally:
-            os.kill(veerd.proc.pid, signal.SIGCONT)
+            veerd.resume()
         assert r.flags & FALLBACK and r.flags & DEADLINE
         np.testing.assert_array_equal(r.action, c.model.fallback_action)
         assert r.round_trip_s < 0.02 + MARGIN_NS / 1e9
