@@ -8,7 +8,6 @@ The margin is deliberately loose (0.5 s on a 20 ms deadline) because the machine
 this is a correctness test, not a benchmark: the property checked is "returned, with the flag",
 never a latency figure (tests/bench measures those)."""
 import json
-import os
 import subprocess
 import time
 
