@@ -248,3 +248,45 @@ def test_curve_keys_from_keygen(bundles, tmp_path):
         assert [t["name"] for t in listed] == ["reach"]
     finally:
         d.stop()
+
+
+def test_reference_rewards_and_options_reach_veerd(ctx, tmp_path):
+    """--reference-rewards: z = (1/m) sum r_j B_j over the bundle's stored reference embeddings
+    (DESIGN.md "The maths"); and the encoding options on the command line reach veerd: each
+    changes the stored specification (its digest) and the task vector."""
+    veerd, b, c = ctx
+    ref_b = b.arrays["reference.b"].astype(np.float64)
+    m = ref_b.shape[0]
+    rng = np.random.default_rng(15)
+    r = rng.uniform(-1, 1, size=m)
+    np.save(tmp_path / "ref.npy", r)
+    t = cli_json(veerd, "task", "put", "ref", "--reference-rewards", str(tmp_path / "ref.npy"),
+                 "--center", "off", "--rescale", "off")
+    assert t["source"] == "reference" and t["count"] == m
+    np.testing.assert_allclose(t["z"], (r[:, None] * ref_b).mean(0), rtol=1e-4, atol=1e-5)
+    py = c.put_reference("ref_py", r, center=False, rescale=False)
+    assert py.digest.hex() == t["digest"]
+    # Centring subtracts the mean reward first: z = (1/m) sum (r_j - mean r) B_j.
+    tc = cli_json(veerd, "task", "put", "ref_c", "--reference-rewards", str(tmp_path / "ref.npy"),
+                  "--center", "on", "--rescale", "off")
+    np.testing.assert_allclose(tc["z"], ((r - r.mean())[:, None] * ref_b).mean(0), rtol=1e-4,
+                               atol=1e-5)
+    # Wrong count for the reference set: veerd's VEER_EDIM, and the file is at fault (3).
+    np.save(tmp_path / "short.npy", r[:-1])
+    rr = run(veerd, "task", "put", "ref_short", "--reference-rewards", str(tmp_path / "short.npy"),
+             "--json")
+    assert rr.returncode == INPUT and json.loads(rr.stdout)["error"]["name"] == "VEER_EDIM"
+
+    s = rng.normal(size=(60, b.model.state_dim)).astype(np.float32)
+    w = rng.uniform(-1, 1, size=60).astype(np.float32)
+    np.save(tmp_path / "s.npy", s)
+    np.save(tmp_path / "w.npy", w)
+    base = ("--samples", str(tmp_path / "s.npy"), "--rewards", str(tmp_path / "w.npy"))
+    plain = cli_json(veerd, "task", "put", "plain", *base)
+    corr = cli_json(veerd, "task", "put", "corr", *base, "--cov-correction")
+    corr_r = cli_json(veerd, "task", "put", "corr_r", *base, "--cov-correction", "--ridge", "0.5")
+    digests = {plain["digest"], corr["digest"], corr_r["digest"]}
+    assert len(digests) == 3
+    assert not np.allclose(plain["z"], corr["z"]) and not np.allclose(corr["z"], corr_r["z"])
+    py = c.put_samples("corr_py", s, w, cov_correction=True, ridge=0.5)
+    assert py.digest.hex() == corr_r["digest"]
