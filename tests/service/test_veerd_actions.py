@@ -84,6 +84,13 @@ def test_identical_specs_stored_once(bundle, start):
     s = bundle.states[:32]
     r = np.linspace(-1, 1, 32, dtype=np.float32)
     a = c.put_samples("left", s, r)
+    # The digest is BLAKE2b-256 (hashlib, RFC 7693) of the specification's deterministic
+    # protobuf encoding (Python's own serializer), so clients can compute it themselves.
+    spec = harness.wire.TaskSpec()
+    spec.samples.states.extend(np.asarray(s, np.float32).ravel())
+    spec.samples.rewards.extend(r)
+    import hashlib
+    assert a.task.digest == hashlib.blake2b(spec.SerializeToString(deterministic=True), digest_size=32).digest()
     b = c.put_samples("left-again", s, r)
     assert a.task.digest == b.task.digest and list(a.task.z) == list(b.task.z)
     # The same name and content: an idempotent success.
