@@ -8,22 +8,18 @@
  * subtraction and one addition. Running sums are recounted exactly from the window once per
  * window length so floating-point error cannot accumulate.
  *
- * Readers on other threads get reports through a triple buffer (three report slots; the writer
- * fills its back slot and swaps it with the middle one, a reader swaps its front slot with the
- * middle one when that holds something newer): neither side ever waits for the other.
+ * Readers on other threads get reports through a triple buffer (tribuf.c), so neither the
+ * writer nor a reader ever waits for the other. Validation lives in drift_validate.c.
  */
-#include "veer/drift.h"
+#include "monitor.h"
 
 #include <math.h>
 #include <stdio.h>
-#include <pthread.h>
-#include <stdatomic.h>
 #include <string.h>
 
 #include "base/base.h"
 
 #define VEER__CHECK_STACK_DIM 512u /* veer_drift_check's stack buffer: 4 KiB */
-#define VEER__FRESH 4u /* in `middle`: the middle slot holds a report no reader has taken */
 
 struct veer_drift {
     /* Training statistics, copied and immutable after creation. */
@@ -53,13 +49,11 @@ struct veer_drift {
     uint64_t level_changes;
     uint32_t since_publish;
 
-    /* Publication (triple buffer). */
+    /* Publication: three reports behind a triple buffer. */
     veer_drift_report *slot[3];
-    unsigned back;           /* the writer's slot */
-    _Atomic unsigned middle; /* slot index | VEER__FRESH */
-    unsigned front;          /* the readers' slot, under read_lock */
+    veer__tribuf published;
+    int published_ready;
     uint64_t publish_seq;
-    pthread_mutex_t read_lock;
 };
 
 #define VEER__FLAG_EXCEED 1u
@@ -94,129 +88,6 @@ const char *veer_drift_level_name(veer_drift_level level)
 uint32_t veer_drift_state_dim(const veer_drift *d)
 {
     return d->n;
-}
-
-/* ---- Validation -------------------------------------------------------------------------- */
-
-static int check_finite(const float *v, size_t count, const char *name, veer_error *err)
-{
-    for (size_t i = 0; i < count; i++) {
-        if (!isfinite(v[i])) {
-            char field[48];
-            snprintf(field, sizeof field, "%s[%zu]", name, i);
-            return veer__error_set(err, VEER_ENONFINITE, field,
-                                   "%s is %g; training statistics "
-                                   "must be finite",
-                                   field, (double)v[i]);
-        }
-    }
-    return 0;
-}
-
-static int validate_training(const veer_drift_training *t, veer_error *err)
-{
-    if (t->state_dim == 0 || t->state_dim > VEER_DRIFT_MAX_DIM)
-        return veer__error_set(err, VEER_EFIELD, "state_dim", "state_dim is %u; it must be 1..%u",
-                               t->state_dim, VEER_DRIFT_MAX_DIM);
-    if (t->bins < 2 || t->bins > VEER_DRIFT_MAX_BINS)
-        return veer__error_set(err, VEER_EFIELD, "bins", "bins is %u; it must be 2..%u", t->bins,
-                               VEER_DRIFT_MAX_BINS);
-    if (!t->mean || !t->cov || !t->precision || !t->quantile_edges)
-        return veer__error_set(err, VEER_EINVAL,
-                               !t->mean        ? "mean"
-                               : !t->cov       ? "cov"
-                               : !t->precision ? "precision"
-                                               : "quantile_edges",
-                               "a training statistic is missing (NULL)");
-    size_t n = t->state_dim, e = t->bins - 1u;
-    int rc;
-    if ((rc = check_finite(t->mean, n, "mean", err)) != 0 ||
-        (rc = check_finite(t->cov, n * n, "cov", err)) != 0 ||
-        (rc = check_finite(t->precision, n * n, "precision", err)) != 0 ||
-        (rc = check_finite(t->quantile_edges, n * e, "quantile_edges", err)) != 0)
-        return rc;
-    for (size_t i = 0; i < n; i++) {
-        if (t->cov[i * n + i] < 0.0f)
-            return veer__error_set(err, VEER_EFIELD, "cov",
-                                   "cov[%zu,%zu] is %g; a variance "
-                                   "cannot be negative",
-                                   i, i, (double)t->cov[i * n + i]);
-        double pii = t->precision[i * n + i];
-        if (!(pii > 0.0))
-            return veer__error_set(err, VEER_EFIELD, "precision",
-                                   "precision[%zu,%zu] is %g; "
-                                   "a precision matrix has a positive diagonal",
-                                   i, i, pii);
-        for (size_t j = 0; j < i; j++) {
-            double a = t->precision[i * n + j], b = t->precision[j * n + i];
-            double scale = sqrt(pii * (double)t->precision[j * n + j]);
-            if (fabs(a - b) > 1e-3 * scale)
-                return veer__error_set(err, VEER_EFIELD, "precision",
-                                       "precision[%zu,%zu] = %g but precision[%zu,%zu] = %g; the "
-                                       "matrix must be symmetric",
-                                       i, j, a, j, i, b);
-        }
-        for (size_t b = 1; b < e; b++)
-            if (t->quantile_edges[i * e + b] < t->quantile_edges[i * e + b - 1])
-                return veer__error_set(err, VEER_EFIELD, "quantile_edges",
-                                       "quantile_edges of feature %zu decrease at edge %zu; "
-                                       "edges must be non-decreasing",
-                                       i, b);
-    }
-    if (!(t->mahalanobis_p99 > 0.0f) || !isfinite(t->mahalanobis_p99))
-        return veer__error_set(err, VEER_EFIELD, "mahalanobis_p99",
-                               "mahalanobis_p99 is %g; it must be a positive finite distance",
-                               (double)t->mahalanobis_p99);
-    if (!(t->mahalanobis_p999 >= t->mahalanobis_p99) || !isfinite(t->mahalanobis_p999))
-        return veer__error_set(err, VEER_EFIELD, "mahalanobis_p999",
-                               "mahalanobis_p999 is %g; it must be finite and at least "
-                               "mahalanobis_p99 (%g)",
-                               (double)t->mahalanobis_p999, (double)t->mahalanobis_p99);
-    return 0;
-}
-
-static int validate_config(const veer_drift_config *c, uint32_t bins, veer_error *err)
-{
-    if (c->window < 1 || c->window > VEER_DRIFT_MAX_WINDOW)
-        return veer__error_set(err, VEER_EFIELD, "window", "window is %u; it must be 1..%u",
-                               c->window, VEER_DRIFT_MAX_WINDOW);
-    if (!(c->psi_floor > 0.0 && c->psi_floor < 1.0 / bins))
-        return veer__error_set(err, VEER_EFIELD, "psi_floor",
-                               "psi_floor is %g; it must lie in "
-                               "(0, 1/bins = %g)",
-                               c->psi_floor, 1.0 / bins);
-    const struct {
-        const char *name;
-        double v;
-    } th[] = {{"psi_watch_clear", c->psi_watch_clear}, {"psi_watch_raise", c->psi_watch_raise},
-              {"psi_alarm_clear", c->psi_alarm_clear}, {"psi_alarm_raise", c->psi_alarm_raise},
-              {"exceed_clear", c->exceed_clear},       {"exceed_raise", c->exceed_raise}};
-    for (size_t i = 0; i < sizeof th / sizeof th[0]; i++)
-        if (!(th[i].v > 0.0) || !isfinite(th[i].v))
-            return veer__error_set(err, VEER_EFIELD, th[i].name,
-                                   "%s is %g; it must be positive and finite", th[i].name, th[i].v);
-    if (!(c->psi_watch_clear < c->psi_watch_raise))
-        return veer__error_set(err, VEER_EFIELD, "psi_watch_clear",
-                               "psi_watch_clear (%g) must be below psi_watch_raise (%g)",
-                               c->psi_watch_clear, c->psi_watch_raise);
-    if (!(c->psi_watch_raise < c->psi_alarm_raise))
-        return veer__error_set(err, VEER_EFIELD, "psi_alarm_raise",
-                               "psi_alarm_raise (%g) must be above psi_watch_raise (%g)",
-                               c->psi_alarm_raise, c->psi_watch_raise);
-    if (!(c->psi_alarm_clear < c->psi_alarm_raise && c->psi_alarm_clear >= c->psi_watch_clear))
-        return veer__error_set(err, VEER_EFIELD, "psi_alarm_clear",
-                               "psi_alarm_clear (%g) must lie in [psi_watch_clear (%g), "
-                               "psi_alarm_raise (%g))",
-                               c->psi_alarm_clear, c->psi_watch_clear, c->psi_alarm_raise);
-    if (!(c->exceed_raise <= 100.0))
-        return veer__error_set(err, VEER_EFIELD, "exceed_raise",
-                               "exceed_raise is %g; a rate of %g %% can never be reached",
-                               c->exceed_raise, c->exceed_raise);
-    if (!(c->exceed_clear < c->exceed_raise))
-        return veer__error_set(err, VEER_EFIELD, "exceed_clear",
-                               "exceed_clear (%g) must be below exceed_raise (%g)", c->exceed_clear,
-                               c->exceed_raise);
-    return 0;
 }
 
 /* ---- Creation ---------------------------------------------------------------------------- */
@@ -272,6 +143,8 @@ static void free_drift(veer_drift *d)
     veer__free(d->psi_level);
     for (int i = 0; i < 3; i++)
         veer_drift_report_destroy(d->slot[i]);
+    if (d->published_ready)
+        veer__tribuf_destroy(&d->published);
     veer__free(d);
 }
 
@@ -300,9 +173,7 @@ int veer_drift_create(const veer_drift_training *train, const veer_drift_config 
         veer_drift_config_init(&defaults);
         cfg = &defaults;
     }
-    int rc = validate_training(train, err);
-    if (rc == 0)
-        rc = validate_config(cfg, train->bins, err);
+    int rc = veer__drift_validate(train, cfg, err);
     if (rc != 0)
         return rc;
 
@@ -332,8 +203,9 @@ int veer_drift_create(const veer_drift_training *train, const veer_drift_config 
         !d->ring_bins || !d->ring_flags || !d->counts || !d->sums || !d->psi_term || !d->psi_live ||
         !d->psi_level || !d->slot[0] || !d->slot[1] || !d->slot[2])
         goto fail_alloc;
-    if (pthread_mutex_init(&d->read_lock, NULL) != 0)
+    if (veer__tribuf_init(&d->published, d->slot[0], d->slot[1], d->slot[2]) != 0)
         goto fail_alloc;
+    d->published_ready = 1;
 
     for (size_t i = 0; i < n; i++) {
         d->mean[i] = train->mean[i];
@@ -354,9 +226,6 @@ int veer_drift_create(const veer_drift_training *train, const veer_drift_config 
         d->psi_term[c] = (p - q) * log(p / q);
     }
     clear_window(d);
-    d->back = 0;
-    atomic_init(&d->middle, 1u);
-    d->front = 2;
     veer_drift_publish(d); /* readers see an empty report, never garbage */
     *out = d;
     return 0;
@@ -373,7 +242,6 @@ void veer_drift_destroy(veer_drift *d)
 {
     if (d == NULL)
         return;
-    pthread_mutex_destroy(&d->read_lock);
     free_drift(d);
 }
 
@@ -707,11 +575,8 @@ void veer_drift_publish(veer_drift *d)
     if (d == NULL)
         return;
     d->publish_seq++;
-    veer_drift_read(d, d->slot[d->back]);
-    /* Release: the report's contents are visible to the reader that takes this slot. */
-    unsigned old =
-        atomic_exchange_explicit(&d->middle, d->back | VEER__FRESH, memory_order_acq_rel);
-    d->back = old & 3u;
+    veer_drift_read(d, veer__tribuf_back(&d->published));
+    veer__tribuf_publish(&d->published);
     d->since_publish = 0;
 }
 
@@ -721,12 +586,7 @@ int veer_drift_snapshot(veer_drift *d, veer_drift_report *out)
         return VEER_EINVAL;
     if (out->state_dim != d->n)
         return VEER_EDIM;
-    pthread_mutex_lock(&d->read_lock);
-    if (atomic_load_explicit(&d->middle, memory_order_acquire) & VEER__FRESH) {
-        unsigned old = atomic_exchange_explicit(&d->middle, d->front, memory_order_acq_rel);
-        d->front = old & 3u;
-    }
-    report_copy(out, d->slot[d->front]);
-    pthread_mutex_unlock(&d->read_lock);
+    report_copy(out, veer__tribuf_read_begin(&d->published));
+    veer__tribuf_read_end(&d->published);
     return 0;
 }
