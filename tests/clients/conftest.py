@@ -45,8 +45,9 @@ def free_port():
 
 
 class Veerd:
-    """One veerd process. ``act`` / ``admin`` are its endpoints; ``stop()`` sends SIGTERM to its
-    pid and waits; ``kill()`` SIGKILL."""
+    """One veerd process. ``act`` / ``admin`` are its endpoints; ``terminate()`` sends SIGTERM to
+    its pid and waits, ``start()`` starts it again on the same endpoints and state directory,
+    ``stop()`` terminates and removes the directory."""
 
     def __init__(self, bundle, transport="ipc", extra=(), ready_keys=None):
         self.ready_keys = ready_keys or {}
@@ -60,11 +61,25 @@ class Veerd:
             self.act, self.admin = f"tcp://127.0.0.1:{p[0]}", f"tcp://127.0.0.1:{p[1]}"
             events = f"tcp://127.0.0.1:{p[2]}"
         self.log = open(os.path.join(self.dir, "veerd.log"), "w+")
-        self.proc = subprocess.Popen(
-            [VEERD, "--bundle", bundle, "--state-dir", os.path.join(self.dir, "state"),
-             "--act", self.act, "--admin", self.admin, "--events", events, *extra],
-            stdout=self.log, stderr=subprocess.STDOUT)
+        self.argv = [VEERD, "--bundle", bundle, "--state-dir", os.path.join(self.dir, "state"),
+                     "--act", self.act, "--admin", self.admin, "--events", events, *extra]
+        self.start()
+
+    def start(self):
+        """Starts veerd (again: same endpoints, same state directory) and waits until ready."""
+        self.proc = subprocess.Popen(self.argv, stdout=self.log, stderr=subprocess.STDOUT)
         self.wait_ready()
+
+    def terminate(self):
+        """SIGTERM to the pid and wait; the state directory stays for a restart."""
+        if self.proc.poll() is None:
+            os.kill(self.proc.pid, signal.SIGCONT)
+            os.kill(self.proc.pid, signal.SIGTERM)
+            try:
+                self.proc.wait(10)
+            except subprocess.TimeoutExpired:
+                os.kill(self.proc.pid, signal.SIGKILL)
+                self.proc.wait(10)
 
     def wait_ready(self, seconds=20.0):
         from veer.client import Client, VeerTimeout
@@ -116,14 +131,7 @@ class Veerd:
         os.kill(self.proc.pid, signal.SIGCONT)
 
     def stop(self):
-        if self.proc.poll() is None:
-            os.kill(self.proc.pid, signal.SIGCONT)  # in case a test left it stopped
-            os.kill(self.proc.pid, signal.SIGTERM)
-            try:
-                self.proc.wait(10)
-            except subprocess.TimeoutExpired:
-                os.kill(self.proc.pid, signal.SIGKILL)
-                self.proc.wait(10)
+        self.terminate()
         self.log.close()
         shutil.rmtree(self.dir, ignore_errors=True)
 

@@ -168,3 +168,29 @@ def test_c_client_refusals_keep_the_fallback_in_the_action(armed):
     r = probe.act("nowhere", 200000, [0.0] * d)
     assert r["rc"] != 0 or (r["flags"] & FALLBACK), r
     assert r["action"] == probe.hello["fallback"] or not (r["flags"] & FALLBACK)
+
+
+def test_c_client_rides_through_a_veerd_restart(armed):
+    """A controller keeps its client across a veerd restart: while veerd is down every call
+    returns the fallback at once (nothing is connected, so nothing is queued to arrive stale
+    later); once veerd is back, ZeroMQ reconnects by itself and the restored task answers."""
+    veerd, probe, d = armed
+    state = np.linspace(0, 1, d)
+    before = probe.act("arm", 200000, state)
+    assert not (before["flags"] & FALLBACK)
+    veerd.terminate()
+    time.sleep(0.2)  # let the client's side see the disconnect
+    down = probe.act("arm", 200000, state)
+    assert down["flags"] & FALLBACK and down["flags"] & DEADLINE
+    # Not connected: the call does not even wait for its 200 ms deadline (bound generous: half).
+    assert down["round_trip_ns"] < 100_000_000, down
+    assert down["action"] == probe.hello["fallback"]
+    veerd.start()
+    end = time.monotonic() + 10
+    while True:
+        after = probe.act("arm", 200000, state)
+        if not (after["flags"] & FALLBACK) or time.monotonic() > end:
+            break
+        time.sleep(0.05)
+    assert not (after["flags"] & FALLBACK), after
+    assert after["task"] == "reach" and after["action"] == before["action"]
