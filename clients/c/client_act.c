@@ -128,6 +128,9 @@ int veer_client_act(veer_client *c, const char *channel, const float *state,
                 }
                 memcpy(action, ar->action, c->model.action_dim * sizeof *action);
                 c->stats.replies++;
+                if (ar->model_version != NULL && ar->model_version[0] != '\0' &&
+                    strcmp(ar->model_version, c->model.model_version) != 0)
+                    c->stats.model_changes++;
                 veer_hist_record(c->histogram, veer__now_ns() - t0);
                 if (res != NULL) {
                     res->value = isfinite(ar->value) ? ar->value : 0.0f;

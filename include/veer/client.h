@@ -131,6 +131,9 @@ typedef struct veer_client_act_stats {
     uint64_t deadline_fallbacks; /* calls answered locally with the fallback */
     uint64_t late_discarded; /* replies thrown away because their seq was not the current one */
     uint64_t bad_replies;    /* replies that did not decode (discarded) */
+    uint64_t model_changes;  /* replies from a model other than the one described at open:
+                                veerd was restarted with another bundle, so the stored
+                                fallback may be stale; call veer_client_describe */
 } veer_client_act_stats;
 
 void veer_client_act_stats_get(const veer_client *client, veer_client_act_stats *out);

@@ -69,9 +69,9 @@ int main(int argc, char **argv)
             printf("{\"acts\":%" PRIu64 ",\"replies\":%" PRIu64 ",\"deadline_fallbacks\":%" PRIu64
                    ",\"late_discarded\":%" PRIu64 ",\"bad_replies\":%" PRIu64
                    ",\"hist_count\":%" PRIu64 ",\"hist_max_ns\":%" PRIu64
-                   ",\"allocations\":%llu}\n",
+                   ",\"model_changes\":%" PRIu64 ",\"allocations\":%llu}\n",
                    s.acts, s.replies, s.deadline_fallbacks, s.late_discarded, s.bad_replies,
-                   h.count, h.max, allocations);
+                   h.count, h.max, s.model_changes, allocations);
             fflush(stdout);
             continue;
         }

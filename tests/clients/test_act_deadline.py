@@ -194,3 +194,26 @@ def test_c_client_rides_through_a_veerd_restart(armed):
         time.sleep(0.05)
     assert not (after["flags"] & FALLBACK), after
     assert after["task"] == "reach" and after["action"] == before["action"]
+
+
+def test_c_client_counts_replies_from_another_model(armed, tmp_path):
+    """veerd restarted with another bundle of the same shape: the client keeps acting (the
+    journal's tasks are re-encoded), and counts the replies whose model differs from the one it
+    described, so the controller knows its stored fallback may be stale."""
+    from veer import bundle as vb, synth
+    veerd, probe, d = armed
+    state = np.linspace(0, 1, d)
+    assert not (probe.act("arm", 200000, state)["flags"] & FALLBACK)
+    assert probe.stats()["model_changes"] == 0
+    layout = synth.make_layout(model_version="continuous-retrained", **synth.PRESETS["continuous"])
+    m, _, _ = synth.build_random(layout, rng_key=8)
+    other = str(tmp_path / "other.veer")
+    vb.write_file_atomic(other, vb.pack_bundle(m))
+    veerd.terminate()
+    veerd.argv[veerd.argv.index("--bundle") + 1] = other
+    veerd.start()
+    end = time.monotonic() + 10
+    while (probe.act("arm", 200000, state)["flags"] & FALLBACK) and time.monotonic() < end:
+        time.sleep(0.05)
+    st = probe.stats()
+    assert st["model_changes"] >= 1, st

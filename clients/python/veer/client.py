@@ -214,6 +214,9 @@ class Client:
         self._ids = itertools.count(1)
         self.model: Optional[Model] = None
         self.late_discarded = 0
+        #: act replies from a model other than the one described (veerd now serves another
+        #: bundle; the stored fallback may be stale: call describe()).
+        self.model_changes = 0
         self._act = self._admin = None
         try:
             if admin is not None:
@@ -379,6 +382,8 @@ class Client:
                 action = np.array(a.action, dtype=np.float32)
                 if action.shape[0] != m.action_dim or not np.all(np.isfinite(action)):
                     continue  # garbled: never hand it to an actuator
+                if a.model_version and a.model_version != m.model_version:
+                    self.model_changes += 1
                 return ActResult(action=action, value=a.value, flags=a.flags, epoch=a.epoch,
                                  task=a.task, seq=seq, server_us=a.server_us,
                                  round_trip_s=time.monotonic() - t0)
