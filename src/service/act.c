@@ -19,6 +19,7 @@
 #include "service/arena.h"
 #include "service/auth.h"
 #include "service/wire.h"
+#include "veer/drift.h"
 #include "veer/histogram.h"
 
 #define ACT_RECV_TIMEOUT_MS 50 /* how often an idle thread checks for stop and announces quiescence */
@@ -44,6 +45,8 @@ struct veer__act {
     int current;
     uint32_t in_window;
     uint64_t policy_p99_ns; /* 0 until the first window is full */
+    veer_drift *drift;      /* NULL without training statistics */
+    veer_hist_recorder *latency;
 
     _Atomic uint64_t acts, fallbacks, deadline_misses, errors, no_task;
 };
@@ -111,6 +114,13 @@ static size_t serve_act(veer__act *a, uint64_t id, const Veer__Wire__ActRequest 
         }
     }
 
+    uint32_t coverage = 0;
+    if (a->drift != NULL) {
+        veer_drift_result dr;
+        if (veer_drift_add(a->drift, q->state, &dr, NULL) == 0 && dr.out_of_coverage)
+            coverage = VEER_ACT_OUT_OF_COVERAGE;
+    }
+
     uint64_t deadline_ns = (uint64_t)(q->deadline_us ? q->deadline_us : a->cfg.default_deadline_us) * 1000u;
     Veer__Wire__ActReply ar = VEER__WIRE__ACT_REPLY__INIT;
     ar.seq = q->seq;
@@ -158,7 +168,7 @@ static size_t serve_act(veer__act *a, uint64_t id, const Veer__Wire__ActRequest 
     ar.n_action = info->action_dim;
     ar.action = a->action;
     ar.value = value;
-    ar.flags = flags;
+    ar.flags = flags | coverage;
     ar.server_us = (uint32_t)((veer__now_ns() - t0) / 1000u);
     Veer__Wire__Reply r = VEER__WIRE__REPLY__INIT;
     r.protocol = VEER__PROTOCOL;
@@ -216,6 +226,7 @@ static void serve_one(veer__act *a)
     }
     veer__wire_send(a->socket, &a->msg, a->reply_buf, out);
     veer__arena_reset(&a->arena);
+    veer_hist_recorder_record(a->latency, veer__now_ns() - t0);
 }
 
 static void *act_main(void *arg)
@@ -247,6 +258,8 @@ static void act_free(veer__act *a)
     veer__wire_msg_close(&a->msg);
     veer_workspace_destroy(a->ws);
     veer__arena_free(&a->arena);
+    veer_drift_destroy(a->drift);
+    veer_hist_recorder_destroy(a->latency);
     veer_hist_destroy(a->window[0]);
     veer_hist_destroy(a->window[1]);
     veer__free(a->reply_buf);
@@ -282,6 +295,14 @@ int veer__act_start(const veer__act_config *cfg, veer__act **out, veer_error *er
         goto fail;
     }
     if ((rc = veer_workspace_create(cfg->bundle, 1, &a->ws, err)) < 0)
+        goto fail;
+    if (veer_hist_recorder_create(&a->latency) != 0) {
+        rc = veer__error_set(err, VEER_ENOMEM, "act", NULL);
+        goto fail;
+    }
+    veer_drift_training train;
+    if (info->has_stats && veer_drift_training_from_model(info, &train, NULL) == 0 &&
+        (rc = veer_drift_create(&train, NULL, &a->drift, err)) < 0)
         goto fail;
 
     if ((rc = veer__wire_router(cfg->zmq_ctx, cfg->endpoint, "--act", cfg->max_message_bytes, ACT_RECV_TIMEOUT_MS,
@@ -322,3 +343,6 @@ void veer__act_counters_get(const veer__act *a, veer__act_counters *out)
     out->errors = atomic_load_explicit(&m->errors, memory_order_relaxed);
     out->no_task = atomic_load_explicit(&m->no_task, memory_order_relaxed);
 }
+
+struct veer_drift *veer__act_drift(veer__act *a) { return a->drift; }
+struct veer_hist_recorder *veer__act_latency(veer__act *a) { return a->latency; }

@@ -11,6 +11,10 @@
  * local deadline covers it). A request whose policy would finish late by the running p99 of
  * policy time, or that did finish late, gets the fallback action with VEER_ACT_DEADLINE.
  *
+ * Coverage. Every valid state also goes to a drift monitor (include/veer/drift.h) of which this
+ * thread is the writer; a state beyond the training p99.9 Mahalanobis distance gets
+ * VEER_ACT_OUT_OF_COVERAGE, whatever action it receives.
+ *
  * Unknown channels. An act on a channel nobody has switched yet answers with the fallback action
  * and VEER_ACT_FALLBACK | VEER_ACT_NO_TASK, exactly like a channel that exists with no task: a
  * controller may start before its supervisor, and it needs an action on every tick either way.
@@ -47,6 +51,14 @@ int veer__act_start(const veer__act_config *cfg, veer__act **out, veer_error *er
 /* Stops taking requests: the thread answers what is already queued on the socket, closes it
  * and exits; returns once it has. NULL allowed. Loop thread. */
 void veer__act_stop(veer__act *a);
+
+/* The drift monitor the act thread feeds with every valid act state (NULL when the bundle has
+ * no training statistics). Read it only through veer_drift_snapshot, from another thread. */
+struct veer_drift *veer__act_drift(veer__act *a);
+
+/* Arrival-to-reply times of act requests (ns), for the metrics endpoint: take intervals with
+ * veer_hist_recorder_take from one other thread. */
+struct veer_hist_recorder *veer__act_latency(veer__act *a);
 
 /* Counters so far (any thread; each read atomically). */
 void veer__act_counters_get(const veer__act *a, veer__act_counters *out);

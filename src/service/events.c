@@ -110,3 +110,18 @@ void veer__events_model_loaded(veer__events *e, const char *version, const uint8
     ev.model_loaded = &s;
     publish(e, "veer.model", &ev);
 }
+
+void veer__events_drift(veer__events *e, const char *scope, const char *statistic, const char *feature,
+                        double value, uint32_t level)
+{
+    Veer__Wire__DriftAlarm s = VEER__WIRE__DRIFT_ALARM__INIT;
+    s.scope = (char *)scope;
+    s.statistic = (char *)statistic;
+    s.feature = (char *)feature;
+    s.value = value;
+    s.level = level;
+    Veer__Wire__Event ev = VEER__WIRE__EVENT__INIT;
+    ev.body_case = VEER__WIRE__EVENT__BODY_DRIFT;
+    ev.drift = &s;
+    publish(e, "veer.drift", &ev);
+}

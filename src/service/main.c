@@ -25,6 +25,7 @@
 #include "service/journal.h"
 #include "service/log.h"
 #include "service/store.h"
+#include "veer/drift.h"
 
 #ifndef VEER_VERSION
 #define VEER_VERSION "0.0.0"
@@ -44,7 +45,34 @@ typedef struct veerd {
     veer__admin *admin;
     veer__zap *zap;
     int stopping;
+    veer_drift_report *drift_report; /* NULL without training statistics */
+    veer_drift_level psi_level, exceed_level;
+    uint64_t drift_seq;
 } veerd;
+
+/* Announces drift level changes on the events socket. The act thread writes the monitor; this
+ * reads the snapshot it publishes, so neither waits for the other. */
+static void check_drift(veerd *d)
+{
+    veer_drift *drift = d->act ? veer__act_drift(d->act) : NULL;
+    veer_drift_report *r = d->drift_report;
+    if (drift == NULL || r == NULL || veer_drift_snapshot(drift, r) != 0 || r->publish_seq == d->drift_seq)
+        return;
+    d->drift_seq = r->publish_seq;
+    if (r->psi_overall != d->psi_level) {
+        d->psi_level = r->psi_overall;
+        veer__events_drift(d->store.events, "service", "psi", d->store.info->feature_names[r->psi_max_feature],
+                           r->psi_max, (uint32_t)r->psi_overall);
+        veer__log_warn("drift: PSI level %s (largest %.3f on %s)", veer_drift_level_name(r->psi_overall),
+                       r->psi_max, d->store.info->feature_names[r->psi_max_feature]);
+    }
+    if (r->exceed_level != d->exceed_level) {
+        d->exceed_level = r->exceed_level;
+        veer__events_drift(d->store.events, "service", "exceedance", "", r->exceed_rate, (uint32_t)r->exceed_level);
+        veer__log_warn("drift: exceedance level %s (%.1f %% of the window beyond the training p99 distance)",
+                       veer_drift_level_name(r->exceed_level), 100.0 * r->exceed_rate);
+    }
+}
 
 static void close_handles(void *data)
 {
@@ -78,6 +106,7 @@ static void on_tick(uv_timer_t *t)
     veerd *d = t->data;
     veer__channels_reclaim(d->store.channels);
     veer__admin_drain(d->admin);
+    check_drift(d);
     if (d->zap != NULL)
         veer__zap_serve(d->zap);
 }
@@ -214,6 +243,8 @@ int main(int argc, char **argv)
         veer__log_error("%s", err.message);
         goto fail_events;
     }
+    if (veer__act_drift(d.act) != NULL && veer_drift_report_create(veer__act_drift(d.act), &d.drift_report) != 0)
+        veer__log_warn("no memory for drift reports; drift events are off");
     veer__admin_config mcfg = {.loop = d.loop,
                                .zmq_ctx = zctx,
                                .endpoint = d.cfg.admin_endpoint,
@@ -246,6 +277,7 @@ int main(int argc, char **argv)
     exit_code = 0;
     veer__admin_close(d.admin);
 fail_act:
+    veer_drift_report_destroy(d.drift_report);
     veer__act_stop(d.act);
 fail_events:
     veer__events_close(events);
