@@ -10,6 +10,7 @@
 #include <stdint.h>
 #include <stdlib.h>
 #include <string.h>
+#include <unistd.h>
 
 #include <cmocka.h>
 
@@ -62,10 +63,18 @@ static void arm(long n)
     calls = 0;
 }
 
-static void check_open(const Veer__Bundle__Model *m)
+/* From memory, or (from_file) through veer_bundle_open, which also allocates the file buffer. */
+static void check_open(const Veer__Bundle__Model *m, int from_file)
 {
     size_t len;
     uint8_t *buf = fx_pack(m, &len);
+    char path[] = "/tmp/veer-oom-test-XXXXXX";
+    if (from_file) {
+        int fd = mkstemp(path);
+        assert_true(fd >= 0);
+        assert_int_equal(write(fd, buf, len), (ssize_t)len);
+        close(fd);
+    }
     assert_int_equal(veer_set_allocator(&counting), 0);
     long n;
     for (n = 1;; n++) {
@@ -73,7 +82,8 @@ static void check_open(const Veer__Bundle__Model *m)
         veer_error err;
         arm(n);
         long before = outstanding;
-        int rc = veer_bundle_open_mem(buf, len, &b, &err);
+        int rc = from_file ? veer_bundle_open(path, &b, &err)
+                           : veer_bundle_open_mem(buf, len, &b, &err);
         if (rc == 0) {
             assert_true(calls < n); /* every allocation was tried and none failed */
             veer_bundle_close(b);
@@ -89,6 +99,8 @@ static void check_open(const Veer__Bundle__Model *m)
     }
     assert_true(n > 10); /* the loop really went through the loader's allocations */
     veer_set_allocator(NULL);
+    if (from_file)
+        unlink(path);
     free(buf);
 }
 
@@ -96,8 +108,9 @@ static void test_open_oom(void **state)
 {
     (void)state;
     fx_srand(31);
-    check_open(fx_continuous_model());
-    check_open(fx_discrete_model());
+    check_open(fx_continuous_model(), 0);
+    check_open(fx_discrete_model(), 0);
+    check_open(fx_discrete_model(), 1);
     fx_free_all();
 }
 
