@@ -711,6 +711,94 @@ static void test_concurrent_calls(void **state)
     }
 }
 
+/* ---- Random specifications: whatever the mix of options and bad values, the encoder returns
+ * 0 with a finite z of the promised norm, or a known code with a field, never a crash (run
+ * under ASan/UBSan in the sanitizer build). Common practice (randomised robustness testing),
+ * no source. */
+
+static uint64_t mix_state = 12345;
+
+static uint32_t next_u32(void)
+{
+    mix_state = mix_state * 6364136223846793005ull + 1442695040888963407ull;
+    return (uint32_t)(mix_state >> 33);
+}
+
+static int pick(const int *options, int n)
+{
+    return options[next_u32() % (uint32_t)n];
+}
+
+static void test_random_specs(void **state)
+{
+    enum { MAXN = 40 };
+    /* Valid choices are drawn more often than invalid ones, so both paths get exercised. */
+    static const int flags[] = {VEER_OPT_DEFAULT, 0, 1, VEER_OPT_DEFAULT, 0, 1, 2, -7};
+    static const int sources[] = {VEER_TASK_SAMPLES,
+                                  VEER_TASK_GOALS,
+                                  VEER_TASK_REFERENCE,
+                                  VEER_TASK_SAMPLES,
+                                  VEER_TASK_GOALS,
+                                  VEER_TASK_REFERENCE,
+                                  0,
+                                  9};
+    static const float ridges[] = {-1.0f, 0.0f, 1e-3f, 0.5f, NAN, INFINITY};
+    static const float specials[] = {0.0f, 1.0f, -1.0f, NAN, INFINITY, -INFINITY, 1e30f, -1e30f};
+    static const int known[] = {VEER_EINVAL,     VEER_EFIELD,    VEER_EEMPTY,   VEER_EDIM,
+                                VEER_ENONFINITE, VEER_ENOSIGNAL, VEER_ETOOMANY, VEER_ESINGULAR};
+    float states[MAXN * SDIM], values[MAXN];
+    int successes = 0;
+    for (int round = 0; round < 3000; round++) {
+        for (int i = 0; i < MAXN * SDIM; i++)
+            states[i] = (float)((int)(next_u32() % 2001) - 1000) / 250.0f;
+        for (int i = 0; i < MAXN; i++)
+            values[i] = (float)((int)(next_u32() % 2001) - 1000) / 500.0f;
+        /* A few special values in random places. */
+        for (int k = next_u32() % 4 == 0 ? 2 : 0; k > 0; k--) {
+            values[next_u32() % MAXN] = specials[next_u32() % 8];
+            states[next_u32() % (MAXN * SDIM)] = specials[next_u32() % 8];
+        }
+        veer_task_spec spec;
+        veer_task_spec_init(&spec, (veer_task_source)pick(sources, 8));
+        spec.count = next_u32() % 3 == 0 ? REFS : next_u32() % (MAXN + 1);
+        spec.states = next_u32() % 20 == 0 ? NULL : states;
+        spec.values = next_u32() % 20 == 0 ? NULL : values;
+        spec.rescale = pick(flags, 8);
+        spec.center = pick(flags, 8);
+        spec.cov_correction = next_u32() % 3 == 0 ? pick(flags, 8) : 0;
+        spec.ridge = next_u32() % 4 == 0 ? ridges[next_u32() % 6] : -1.0f;
+        spec.max_count = next_u32() % 10 == 0 ? next_u32() % MAXN : 0;
+        if (spec.source == VEER_TASK_REFERENCE && next_u32() % 2)
+            spec.states = NULL;
+
+        float z[ZDIM];
+        veer_task_report rep;
+        veer_error err;
+        const veer_bundle *b = next_u32() % 4 == 0 ? bare : full;
+        int rc = veer_task_encode(b, &spec, z, next_u32() % 2 ? &rep : NULL, &err);
+        if (rc == 0) {
+            double norm = hypot(z[0], z[1]);
+            assert_true(isfinite(z[0]) && isfinite(z[1]) && norm > 0);
+            int rescaled = spec.rescale == 1 || spec.rescale == VEER_OPT_DEFAULT;
+            if (rescaled)
+                assert_float_equal(norm, sqrt((double)ZDIM), 1e-5);
+            successes++;
+            continue;
+        }
+        int is_known = 0;
+        for (size_t k = 0; k < sizeof known / sizeof known[0]; k++)
+            is_known |= rc == known[k];
+        if (!is_known)
+            fail_msg("round %d: unexpected %s (%s: %s)", round, veer_errname(rc), err.field,
+                     err.message);
+        assert_int_equal(err.code, rc);
+        assert_true(strlen(err.field) > 0);
+    }
+    /* The mix must exercise the success path too, not only the checks. */
+    print_message("%d of 3000 random specifications encoded\n", successes);
+    assert_true(successes > 300);
+}
+
 int main(void)
 {
     const struct CMUnitTest tests[] = {
@@ -730,6 +818,7 @@ int main(void)
         cmocka_unit_test(test_r2_of_an_exact_fit),
         cmocka_unit_test(test_out_of_memory),
         cmocka_unit_test(test_concurrent_calls),
+        cmocka_unit_test(test_random_specs),
     };
     return cmocka_run_group_tests(tests, setup, teardown);
 }
