@@ -168,7 +168,9 @@ static size_t serve_act(veer__act *a, uint64_t id, const Veer__Wire__ActRequest 
     ar.n_action = info->action_dim;
     ar.action = a->action;
     ar.value = value;
-    ar.flags = flags | coverage;
+    /* The coverage flag warns that this action came from a policy with little data behind it;
+     * a fallback action did not, so it is not flagged (the monitor still counts the state). */
+    ar.flags = flags | ((flags & VEER_ACT_FALLBACK) ? 0 : coverage);
     ar.server_us = (uint32_t)((veer__now_ns() - t0) / 1000u);
     Veer__Wire__Reply r = VEER__WIRE__REPLY__INIT;
     r.protocol = VEER__PROTOCOL;

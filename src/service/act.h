@@ -12,8 +12,9 @@
  * policy time, or that did finish late, gets the fallback action with VEER_ACT_DEADLINE.
  *
  * Coverage. Every valid state also goes to a drift monitor (include/veer/drift.h) of which this
- * thread is the writer; a state beyond the training p99.9 Mahalanobis distance gets
- * VEER_ACT_OUT_OF_COVERAGE, whatever action it receives.
+ * thread is the writer; an action the policy computed for a state beyond the training p99.9
+ * Mahalanobis distance carries VEER_ACT_OUT_OF_COVERAGE (fallback actions do not: they owe
+ * nothing to the policy).
  *
  * Unknown channels. An act on a channel nobody has switched yet answers with the fallback action
  * and VEER_ACT_FALLBACK | VEER_ACT_NO_TASK, exactly like a channel that exists with no task: a

@@ -87,8 +87,12 @@ def test_out_of_coverage_flag_and_drift_alarm(lib, continuous_bundle, start):
             if abs(dist[i] - p999) < 1e-4 * p999:
                 continue  # too close to call between float and double arithmetic
             r = c.do_act("arm", st, seq=i, deadline_us=100000).act
+            assert r.flags & harness.ACT_FALLBACK == 0
             assert bool(r.flags & ACT_OUT_OF_COVERAGE) == (dist[i] > p999), (i, dist[i], p999, r.flags)
             checked += 1
+        # A fallback action is not flagged: it owes nothing to the policy.
+        far = c.do_act("no-task-here", probe[np.argmax(dist)]).act
+        assert far.flags == harness.ACT_FALLBACK | harness.ACT_NO_TASK
         assert checked > 90 and (dist > p999).sum() > 10 and (dist <= p999).sum() > 10
     # A window (1000 states) of far-out states raises the exceedance alarm on the events socket.
     sub = subscriber(d.eps, b"veer.drift")
