@@ -120,18 +120,18 @@ void veer_hist_destroy(veer_hist *h)
     veer__free_aligned(h);
 }
 
-void veer_hist_record_n(veer_hist *h, uint64_t value_ns, uint64_t n)
+/* Both public record functions inline this, so the one-value path is a direct call (no hop
+ * through the shared library's symbol table) with n a constant 1. */
+static inline void record_impl(veer_hist *h, uint64_t value_ns, uint64_t n)
 {
-    if (n == 0)
-        return;
     if (value_ns < VEER_HIST_LOWEST_NS)
         bump(&h->underflow, n);
     else if (value_ns > VEER_HIST_HIGHEST_NS)
         bump(&h->overflow, n);
     bump(&h->counts[bucket_of(clamp_value(value_ns))], n);
 
-    uint64_t s = rd(&h->sum), add = value_ns * n;
-    if (add / n != value_ns) /* saturate rather than wrap */
+    uint64_t s = rd(&h->sum), add;
+    if (__builtin_mul_overflow(value_ns, n, &add)) /* saturate rather than wrap */
         add = UINT64_MAX;
     wr(&h->sum, s + add < s ? UINT64_MAX : s + add);
     if (value_ns < rd(&h->min))
@@ -140,9 +140,15 @@ void veer_hist_record_n(veer_hist *h, uint64_t value_ns, uint64_t n)
         wr(&h->max, value_ns);
 }
 
+void veer_hist_record_n(veer_hist *h, uint64_t value_ns, uint64_t n)
+{
+    if (n != 0)
+        record_impl(h, value_ns, n);
+}
+
 void veer_hist_record(veer_hist *h, uint64_t value_ns)
 {
-    veer_hist_record_n(h, value_ns, 1);
+    record_impl(h, value_ns, 1);
 }
 
 void veer_hist_record_shared(veer_hist *h, uint64_t value_ns)
