@@ -27,6 +27,11 @@ struct veer_bundle {
     int has_actor;
     int actor_normalized;
     float *action_index; /* discrete: 0, 1, ..., count - 1 as floats (the F rows for acting) */
+    /* State features that F or the actor look up in an embedding table, with the table's count
+     * for each: acting checks them for every state before computing anything, so a bad index
+     * is refused with nothing written. */
+    uint32_t *index_features, *index_counts;
+    uint32_t index_check_count;
     uint8_t digest[32];
     void *blocks;        /* the chain of blocks this bundle owns */
     size_t memory;       /* bytes in the chain */

@@ -324,6 +324,45 @@ static int build_info(struct veer_bundle *b, const Veer__Bundle__Model *m, veer_
     return 0;
 }
 
+/* Appends to the bundle's index checks the state features that `net`'s embeddings read. The
+ * checker put every embedding first in a branch of index inputs, so input column j of such a
+ * branch is index j of the embedding. */
+static void collect_index_checks(struct veer_bundle *b, const Veer__Bundle__Network *net,
+                                 uint32_t state_dim)
+{
+    for (size_t bi = 0; net != NULL && bi < net->n_branches; bi++) {
+        const Veer__Bundle__Branch *br = net->branches[bi];
+        if (br->n_layers == 0 || br->layers[0]->kind != VEER__BUNDLE__LAYER_KIND__LAYER_EMBEDDING)
+            continue;
+        const uint32_t *counts = br->layers[0]->counts;
+        size_t col = 0;
+        for (size_t i = 0; i < br->n_inputs; i++) {
+            const Veer__Bundle__Input *in = br->inputs[i];
+            if (in->kind != VEER__BUNDLE__INPUT_KIND__INPUT_STATE) {
+                col++; /* the action as_index: always valid, made by the runtime */
+                continue;
+            }
+            size_t nf = in->n_features ? in->n_features : state_dim;
+            for (size_t j = 0; j < nf; j++, col++) {
+                b->index_features[b->index_check_count] =
+                    in->n_features ? in->features[j] : (uint32_t)j;
+                b->index_counts[b->index_check_count++] = counts[col];
+            }
+        }
+    }
+}
+
+static size_t embedding_inputs(const Veer__Bundle__Network *net)
+{
+    size_t n = 0;
+    for (size_t bi = 0; net != NULL && bi < net->n_branches; bi++) {
+        const Veer__Bundle__Branch *br = net->branches[bi];
+        if (br->n_layers > 0 && br->layers[0]->kind == VEER__BUNDLE__LAYER_KIND__LAYER_EMBEDDING)
+            n += br->layers[0]->in_dim;
+    }
+    return n;
+}
+
 int veer__bundle_build(struct veer_bundle *b, const Veer__Bundle__Model *m, veer_error *err)
 {
     int rc = build_info(b, m, err);
@@ -336,6 +375,17 @@ int veer__bundle_build(struct veer_bundle *b, const Veer__Bundle__Model *m, veer
         b->has_actor = 1;
     }
     b->actor_normalized = m->actor_normalized;
+    size_t checks = embedding_inputs(m->forward) + embedding_inputs(m->actor);
+    if (rc == 0 && checks > 0) {
+        b->index_features = veer__bundle_alloc(b, checks * sizeof *b->index_features);
+        b->index_counts = veer__bundle_alloc(b, checks * sizeof *b->index_counts);
+        if (b->index_features == NULL || b->index_counts == NULL)
+            rc = VEER_ENOMEM;
+        else {
+            collect_index_checks(b, m->forward, m->state_dim);
+            collect_index_checks(b, m->actor, m->state_dim);
+        }
+    }
     if (rc == VEER_ENOMEM && (err == NULL || err->code != VEER_ENOMEM))
         veer__error_set(err, rc, "bundle", "no memory for the model's %zu bytes so far", b->memory);
     return rc;

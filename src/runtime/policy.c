@@ -1,4 +1,5 @@
-/* Acting and the public network evaluations. The act path is: check the inputs are finite,
+/* Acting and the public network evaluations. The act path is: check the inputs (finite, and
+ * every state feature an embedding reads an integer within its table) before touching any output,
  * evaluate in slices of at most max_batch states, then turn network outputs into actions that
  * are always finite and within bounds. Continuous: actor, affine map from [-1, 1] when the
  * actor is normalised, clip, then Q = F(s, a, z)·z for the clipped action (the value of what
@@ -111,6 +112,19 @@ static int act_discrete(veer_workspace *ws, size_t m, const float *states, const
     return 0;
 }
 
+/* 1 when every state feature that an embedding reads is an integer within its table. */
+static int indices_valid(const veer_bundle *b, size_t n, const float *states)
+{
+    uint32_t sd = b->info.state_dim;
+    for (size_t r = 0; r < n; r++)
+        for (uint32_t k = 0; k < b->index_check_count; k++) {
+            float v = states[r * sd + b->index_features[k]];
+            if (!(v >= 0.0f && v < (float)b->index_counts[k]) || v != floorf(v))
+                return 0;
+        }
+    return 1;
+}
+
 int veer_act_batch(veer_workspace *ws, size_t n, const float *states, const float *z,
                    float *actions, float *values, uint32_t *flags)
 {
@@ -119,6 +133,8 @@ int veer_act_batch(veer_workspace *ws, size_t n, const float *states, const floa
     const veer_model_info *info = &ws->bundle->info;
     if (!veer__k_all_finite(n * info->state_dim, states) || !veer__k_all_finite(info->z_dim, z))
         return VEER_ENONFINITE;
+    if (!indices_valid(ws->bundle, n, states))
+        return VEER_EINVAL;
 
     /* Callers that pass NULL for values or flags get them into the workspace's scratch. */
     for (size_t done = 0; done < n; done += ws->max_batch) {

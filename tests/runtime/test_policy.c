@@ -357,6 +357,14 @@ static void test_embedding_state_index(void **state)
         float s[4] = {0.4f, -0.7f, 1.1f, bad[k]}, a;
         assert_int_equal(veer_act(ws, s, z, &a, NULL, NULL), VEER_EINVAL);
     }
+    /* In a batch the check comes first: with slices of one state, the good first two states
+     * are not acted on either when the third is bad. */
+    float batch[12] = {0.4f, -0.7f, 1.1f, 0, 0.1f, 0.2f, 0.3f, 2, 0.5f, 0.5f, 0.5f, 3};
+    float acts[3] = {-7, -7, -7};
+    assert_int_equal(veer_act_batch(ws, 3, batch, z, acts, NULL, NULL), VEER_EINVAL);
+    assert_true(acts[0] == -7 && acts[1] == -7 && acts[2] == -7);
+    batch[11] = 1;
+    assert_int_equal(veer_act_batch(ws, 3, batch, z, acts, NULL, NULL), 0);
     veer_workspace_destroy(ws);
     veer_bundle_close(b);
     fx_free_all();
