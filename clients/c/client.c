@@ -47,7 +47,10 @@ static void arena_free(void *data, void *p)
     (void)p;
 }
 
-void veer__client_arena_reset(veer_client *c) { c->arena_used = 0; }
+void veer__client_arena_reset(veer_client *c)
+{
+    c->arena_used = 0;
+}
 
 void veer_client_options_init(veer_client_options *opts)
 {
@@ -83,7 +86,8 @@ static int open_socket(veer_client *c, const char *endpoint, const veer_client_o
             zmq_close(s);
             return veer__error_set(err, VEER_EINVAL, "server_key",
                                    "libzmq refused the CURVE keys: %s (is libzmq built with "
-                                   "CURVE support?)", zmq_strerror(errno));
+                                   "CURVE support?)",
+                                   zmq_strerror(errno));
         }
     }
     if (zmq_connect(s, endpoint) != 0) {
@@ -91,7 +95,8 @@ static int open_socket(veer_client *c, const char *endpoint, const veer_client_o
         zmq_close(s);
         return veer__error_set(err, VEER_EINVAL, field,
                                "cannot connect to '%s': %s (expected tcp://HOST:PORT or "
-                               "ipc:///path)", endpoint, zmq_strerror(e));
+                               "ipc:///path)",
+                               endpoint, zmq_strerror(e));
     }
     *out = s;
     return 0;
@@ -263,8 +268,8 @@ static int recv_message(void *sock, zmq_msg_t *body)
     }
 }
 
-int veer__client_call(veer_client *c, void *sock, Veer__Wire__Request *req,
-                      Veer__Wire__Reply **out, veer_error *err)
+int veer__client_call(veer_client *c, void *sock, Veer__Wire__Request *req, Veer__Wire__Reply **out,
+                      veer_error *err)
 {
     *out = NULL;
     req->protocol = VEER_CLIENT_PROTOCOL;
@@ -285,8 +290,8 @@ int veer__client_call(veer_client *c, void *sock, Veer__Wire__Request *req,
         zmq_msg_t body;
         zmq_msg_init(&body);
         if (recv_message(sock, &body) == 0) {
-            Veer__Wire__Reply *r = veer__wire__reply__unpack(&veer__client_heap, zmq_msg_size(&body),
-                                                             zmq_msg_data(&body));
+            Veer__Wire__Reply *r = veer__wire__reply__unpack(
+                &veer__client_heap, zmq_msg_size(&body), zmq_msg_data(&body));
             zmq_msg_close(&body);
             if (r == NULL)
                 continue; /* not a reply we can read; keep waiting for ours */
@@ -312,7 +317,8 @@ int veer__client_call(veer_client *c, void *sock, Veer__Wire__Request *req,
 timed_out:
     return veer__error_set(err, VEER_ETIMEDOUT, "",
                            "veerd did not answer within %u ms: is it running, is the endpoint "
-                           "right, and (with CURVE) are the keys right?", c->timeout_ms);
+                           "right, and (with CURVE) are the keys right?",
+                           c->timeout_ms);
 }
 
 const veer_client_model *veer_client_model_info(const veer_client *c)

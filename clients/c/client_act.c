@@ -23,7 +23,10 @@ void veer_client_act_stats_get(const veer_client *c, veer_client_act_stats *out)
     *out = c->stats;
 }
 
-const veer_hist *veer_client_act_histogram(const veer_client *c) { return c->histogram; }
+const veer_hist *veer_client_act_histogram(const veer_client *c)
+{
+    return c->histogram;
+}
 
 static void fill_fallback(const veer_client *c, float *action, veer_client_act_result *res,
                           uint64_t seq, uint32_t flags, uint64_t t0)
@@ -52,9 +55,8 @@ static int reply_usable(const veer_client *c, const Veer__Wire__ActReply *a)
     return 1;
 }
 
-int veer_client_act(veer_client *c, const char *channel, const float *state,
-                    uint32_t deadline_us, float *action, veer_client_act_result *res,
-                    veer_error *err)
+int veer_client_act(veer_client *c, const char *channel, const float *state, uint32_t deadline_us,
+                    float *action, veer_client_act_result *res, veer_error *err)
 {
     uint64_t t0 = veer__now_ns();
     if (c->act_sock == NULL || !c->have_model)
@@ -94,7 +96,8 @@ int veer_client_act(veer_client *c, const char *channel, const float *state,
     req.act = &a;
     size_t n = veer__wire__request__get_packed_size(&req);
     if (n > c->send_cap)
-        return veer__error_set(err, VEER_EINVAL, "channel", "the request does not fit the "
+        return veer__error_set(err, VEER_EINVAL, "channel",
+                               "the request does not fit the "
                                "act buffer sized at open; shorten the channel name");
     veer__wire__request__pack(&req, c->send_buf);
     if (zmq_send(c->act_sock, c->send_buf, n, ZMQ_DONTWAIT) != (int)n) {
@@ -114,8 +117,8 @@ int veer_client_act(veer_client *c, const char *channel, const float *state,
         }
         if (got >= 0) {
             veer__client_arena_reset(c);
-            Veer__Wire__Reply *r = veer__wire__reply__unpack(&c->arena_alloc, (size_t)got,
-                                                             c->recv_buf);
+            Veer__Wire__Reply *r =
+                veer__wire__reply__unpack(&c->arena_alloc, (size_t)got, c->recv_buf);
             if (r == NULL) {
                 c->stats.bad_replies++;
                 continue;

@@ -42,7 +42,8 @@ static int call(veer_client *c, Veer__Wire__Request *req, Veer__Wire__Reply__Bod
         veer__wire__reply__free_unpacked(r, &veer__client_heap);
         return veer__error_set(err, VEER_EBADMSG, "reply",
                                "veerd answered with message %d where %d was expected; are the "
-                               "client and veerd the same version?", (int)r->body_case, (int)want);
+                               "client and veerd the same version?",
+                               (int)r->body_case, (int)want);
     }
     c->last = r;
     return 0;
@@ -227,7 +228,8 @@ int veer_client_switch(veer_client *c, const char *channel, const char *task,
     int rc;
     if (out != NULL)
         *out = NULL;
-    if ((rc = check_name(channel, "channel", err)) != 0 || (rc = check_name(task, "task", err)) != 0)
+    if ((rc = check_name(channel, "channel", err)) != 0 ||
+        (rc = check_name(task, "task", err)) != 0)
         return rc;
     Veer__Wire__SwitchChannel sw = VEER__WIRE__SWITCH_CHANNEL__INIT;
     sw.channel = (char *)channel;

@@ -64,8 +64,8 @@ long veer__client_recv_nowait(veer_client *c, void *sock);
 /* Sends `req` on `sock` and waits up to timeout_ms for the reply with the same id, unpacked on
  * the heap into *out (the caller frees it with veer__wire__reply__free_unpacked). A veerd
  * Error reply becomes its code, field and message in `err`, and *out stays NULL. */
-int veer__client_call(veer_client *c, void *sock, Veer__Wire__Request *req,
-                      Veer__Wire__Reply **out, veer_error *err);
+int veer__client_call(veer_client *c, void *sock, Veer__Wire__Request *req, Veer__Wire__Reply **out,
+                      veer_error *err);
 
 /* Copies a veerd Error reply into `err` and returns its code (VEER_EBADMSG when the code is not
  * a negative number). */

@@ -10,10 +10,10 @@
  * describe request when the client opened, sets VEER_ACT_FALLBACK | VEER_ACT_DEADLINE and
  * returns 0: it never waits past the deadline. (It stops waiting up to 60 µs early to absorb
  * the kernel's timer slack; how soon the thread runs again after that is the scheduler's
- * business: run a controller thread with a real-time policy for hard bounds.) A reply that arrives later carries an older
- * sequence number and is thrown away by the next call. An act call allocates nothing in this
- * library: the request is packed into a buffer sized at open, the reply is received into a
- * fixed buffer and unpacked with a bump allocator over a fixed arena. (libzmq itself copies
+ * business: run a controller thread with a real-time policy for hard bounds.) A reply that arrives
+ * later carries an older sequence number and is thrown away by the next call. An act call allocates
+ * nothing in this library: the request is packed into a buffer sized at open, the reply is received
+ * into a fixed buffer and unpacked with a bump allocator over a fixed arena. (libzmq itself copies
  * messages longer than 33 bytes into memory it allocates; that is outside our control.)
  *
  * Supervisor calls (put, get, list and drop tasks, switch a channel, list channels, status,
@@ -62,7 +62,7 @@ typedef struct veer_client_options {
     const char *server_key;     /* veerd's Z85 public key; NULL: no CURVE */
     const char *public_key;     /* this client's Z85 key pair; both required with server_key */
     const char *secret_key;
-    int act_curve;              /* 1: use CURVE on the act socket too */
+    int act_curve; /* 1: use CURVE on the act socket too */
 } veer_client_options;
 
 /* Everything zeroed: no endpoints, default timeout, no CURVE. */
@@ -104,13 +104,13 @@ int veer_client_describe(veer_client *client, const veer_client_model **out, vee
 /* ---- Acting (controllers) ---------------------------------------------------------------- */
 
 typedef struct veer_client_act_result {
-    uint64_t seq;        /* this call's sequence number */
-    float value;         /* Q(s, a, z); 0 with the fallback action */
-    uint32_t flags;      /* VEER_ACT_* bits: veerd's, or FALLBACK|DEADLINE set locally */
-    uint64_t epoch;      /* the channel's switch epoch (0 for a local fallback) */
+    uint64_t seq;   /* this call's sequence number */
+    float value;    /* Q(s, a, z); 0 with the fallback action */
+    uint32_t flags; /* VEER_ACT_* bits: veerd's, or FALLBACK|DEADLINE set locally */
+    uint64_t epoch; /* the channel's switch epoch (0 for a local fallback) */
     char task[VEER_CLIENT_NAME_MAX]; /* the task that produced the action, "" when none */
-    uint32_t server_us;  /* time veerd spent on the request */
-    uint64_t round_trip_ns; /* send to reply (or to giving up) on this machine's clock */
+    uint32_t server_us;              /* time veerd spent on the request */
+    uint64_t round_trip_ns;          /* send to reply (or to giving up) on this machine's clock */
 } veer_client_act_result;
 
 /* Asks for the action for `state` (state_dim floats) on `channel`, waiting at most
@@ -126,14 +126,14 @@ int veer_client_act(veer_client *client, const char *channel, const float *state
                     veer_error *err);
 
 typedef struct veer_client_act_stats {
-    uint64_t acts;           /* veer_client_act calls that sent a request */
-    uint64_t replies;        /* replies received in time */
+    uint64_t acts;               /* veer_client_act calls that sent a request */
+    uint64_t replies;            /* replies received in time */
     uint64_t deadline_fallbacks; /* calls answered locally with the fallback */
-    uint64_t late_discarded; /* replies thrown away because their seq was not the current one */
-    uint64_t bad_replies;    /* replies that did not decode (discarded) */
-    uint64_t model_changes;  /* replies from a model other than the one described at open:
-                                veerd was restarted with another bundle, so the stored
-                                fallback may be stale; call veer_client_describe */
+    uint64_t late_discarded;     /* replies thrown away because their seq was not the current one */
+    uint64_t bad_replies;        /* replies that did not decode (discarded) */
+    uint64_t model_changes;      /* replies from a model other than the one described at open:
+                                    veerd was restarted with another bundle, so the stored
+                                    fallback may be stale; call veer_client_describe */
 } veer_client_act_stats;
 
 void veer_client_act_stats_get(const veer_client *client, veer_client_act_stats *out);
@@ -148,16 +148,16 @@ const veer_hist *veer_client_act_histogram(const veer_client *client);
 
 typedef struct veer_client_task {
     const char *name;
-    uint8_t digest[32];   /* BLAKE2b-256 of the canonical specification */
-    uint32_t source;      /* VEER_TASK_SAMPLES, VEER_TASK_GOALS or VEER_TASK_REFERENCE */
+    uint8_t digest[32]; /* BLAKE2b-256 of the canonical specification */
+    uint32_t source;    /* VEER_TASK_SAMPLES, VEER_TASK_GOALS or VEER_TASK_REFERENCE */
     uint32_t count;
-    double r2;            /* expressiveness; NaN when it does not apply */
-    double norm_raw;      /* ||z|| before rescaling */
+    double r2;       /* expressiveness; NaN when it does not apply */
+    double norm_raw; /* ||z|| before rescaling */
     uint32_t z_dim;
     const float *z;
     uint32_t active_on_count;
     const char *const *active_on; /* channels whose active task this is */
-    int encoded;          /* 0 while veerd is still encoding it */
+    int encoded;                  /* 0 while veerd is still encoding it */
 } veer_client_task;
 
 typedef struct veer_client_channel {
@@ -194,8 +194,8 @@ int veer_client_task_drop(veer_client *client, const char *name, veer_error *err
  * be NULL) is the channel after the switch. */
 int veer_client_switch(veer_client *client, const char *channel, const char *task,
                        const veer_client_channel **out, veer_error *err);
-int veer_client_channels(veer_client *client, const veer_client_channel **channels,
-                         size_t *count, veer_error *err);
+int veer_client_channels(veer_client *client, const veer_client_channel **channels, size_t *count,
+                         veer_error *err);
 int veer_client_status_get(veer_client *client, const veer_client_status **out, veer_error *err);
 
 #ifdef __cplusplus

@@ -18,9 +18,21 @@
 /* Every allocation libveer_client makes goes through veer_set_allocator's hook; counting them
  * lets the test check that acting allocates nothing in our code. */
 static unsigned long long allocations;
-static void *count_malloc(size_t n) { allocations++; return malloc(n); }
-static void *count_calloc(size_t n, size_t s) { allocations++; return calloc(n, s); }
-static void *count_realloc(void *p, size_t n) { allocations++; return realloc(p, n); }
+static void *count_malloc(size_t n)
+{
+    allocations++;
+    return malloc(n);
+}
+static void *count_calloc(size_t n, size_t s)
+{
+    allocations++;
+    return calloc(n, s);
+}
+static void *count_realloc(void *p, size_t n)
+{
+    allocations++;
+    return realloc(p, n);
+}
 
 static void print_floats(const float *v, uint32_t n)
 {
@@ -94,8 +106,9 @@ int main(int argc, char **argv)
         rc = veer_client_act(c, channel, state, (uint32_t)deadline_us, action, &res, &err);
         printf("{\"rc\":%d,\"name\":\"%s\",\"field\":\"%s\",\"flags\":%u,\"seq\":%" PRIu64
                ",\"epoch\":%" PRIu64 ",\"task\":\"%s\",\"value\":%.9g,\"round_trip_ns\":%" PRIu64
-               ",\"action\":", rc, veer_errname(rc), err.field, res.flags, res.seq, res.epoch,
-               res.task, (double)res.value, res.round_trip_ns);
+               ",\"action\":",
+               rc, veer_errname(rc), err.field, res.flags, res.seq, res.epoch, res.task,
+               (double)res.value, res.round_trip_ns);
         print_floats(action, m->action_dim);
         printf("}\n");
         fflush(stdout);

@@ -125,9 +125,18 @@ static void admin_calls_check_arguments_and_time_out(void **state)
 
 /* Fails the Nth allocation from now on; counts calls. */
 static long alloc_countdown;
-static void *failing_malloc(size_t n) { return --alloc_countdown == 0 ? NULL : malloc(n); }
-static void *failing_calloc(size_t n, size_t s) { return --alloc_countdown == 0 ? NULL : calloc(n, s); }
-static void *failing_realloc(void *p, size_t n) { return --alloc_countdown == 0 ? NULL : realloc(p, n); }
+static void *failing_malloc(size_t n)
+{
+    return --alloc_countdown == 0 ? NULL : malloc(n);
+}
+static void *failing_calloc(size_t n, size_t s)
+{
+    return --alloc_countdown == 0 ? NULL : calloc(n, s);
+}
+static void *failing_realloc(void *p, size_t n)
+{
+    return --alloc_countdown == 0 ? NULL : realloc(p, n);
+}
 
 static void every_allocation_failure_is_clean(void **state)
 {

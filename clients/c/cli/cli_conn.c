@@ -163,7 +163,8 @@ static int read_key(const veer_cli_conn *cc, const char *path, char out[41])
     if (n != VEER_CLIENT_KEY_LEN)
         return veer_cli_complain(cc, VEER_CLI_INPUT, path,
                                  "key file '%s' must hold one 40-character Z85 key (as `veer "
-                                 "keygen` writes), found %zu characters", path, n);
+                                 "keygen` writes), found %zu characters",
+                                 path, n);
     memcpy(out, line, 41);
     return 0;
 }
@@ -225,9 +226,8 @@ int veer_cli_fail(const veer_cli_conn *cc, const veer_error *err)
         fprintf(stderr, "veer %s: no answer from veerd at %s: %s\n", cc->command,
                 cc->used_act ? cc->act : cc->admin, err->message);
     else
-        fprintf(stderr, "veer %s: refused: %s (%s)%s%s: %s\n", cc->command,
-                veer_errname(err->code), veer_strerror(err->code), err->field[0] ? " in " : "",
-                err->field, err->message);
+        fprintf(stderr, "veer %s: refused: %s (%s)%s%s: %s\n", cc->command, veer_errname(err->code),
+                veer_strerror(err->code), err->field[0] ? " in " : "", err->field, err->message);
     if (cc->json) {
         cJSON *doc = cJSON_CreateObject(), *e = cJSON_AddObjectToObject(doc, "error");
         cJSON_AddNumberToObject(e, "code", err->code);

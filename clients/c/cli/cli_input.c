@@ -27,7 +27,10 @@ void veer_cli_matrix_free(veer_cli_matrix *m)
     m->rows = m->cols = 0;
 }
 
-static const char *nonfinite_name(double x) { return isnan(x) ? "NaN" : "infinite"; }
+static const char *nonfinite_name(double x)
+{
+    return isnan(x) ? "NaN" : "infinite";
+}
 
 /* Parses one line of comma-separated numbers into `row` (grown as needed). Returns the number
  * of values, or -1 with *bad_col set to the 1-based column that is not a number, or -2 with
@@ -88,11 +91,12 @@ int veer_cli_parse_vector(const veer_cli_conn *cc, const char *text, const char 
         veer__free(row);
         if (n == -2)
             return veer_cli_complain(cc, VEER_CLI_USAGE, flag,
-                                     "%s: value %zu is %s; give finite numbers like 0.5,-1,2",
-                                     flag, bad, nonfinite_name(x));
+                                     "%s: value %zu is %s; give finite numbers like 0.5,-1,2", flag,
+                                     bad, nonfinite_name(x));
         return veer_cli_complain(cc, VEER_CLI_USAGE, flag,
                                  "%s: value %zu of '%s' is not a number; give comma-separated "
-                                 "numbers like 0.5,-1,2", flag, bad, text);
+                                 "numbers like 0.5,-1,2",
+                                 flag, bad, text);
     }
     out->values = row;
     out->rows = 1;
@@ -124,20 +128,21 @@ static int read_csv(const veer_cli_conn *cc, const char *path, veer_cli_matrix *
         if (n == -1) {
             rc = veer_cli_complain(cc, VEER_CLI_INPUT, path,
                                    "%s line %zu, column %zu: not a number; the file must hold "
-                                   "comma-separated numbers, one row per line", path, lineno, bad);
+                                   "comma-separated numbers, one row per line",
+                                   path, lineno, bad);
             break;
         }
         if (n == -2) {
             rc = veer_cli_complain(cc, VEER_CLI_INPUT, path,
-                                   "%s line %zu, column %zu: %s; every value must be finite",
-                                   path, lineno, bad, nonfinite_name(row[bad - 1]));
+                                   "%s line %zu, column %zu: %s; every value must be finite", path,
+                                   lineno, bad, nonfinite_name(row[bad - 1]));
             break;
         }
         if (seen_data && (size_t)n != out->cols) {
             rc = veer_cli_complain(cc, VEER_CLI_INPUT, path,
                                    "%s line %zu has %ld values where the rows before have %zu; "
-                                   "every row must be the same length", path, lineno, n,
-                                   out->cols);
+                                   "every row must be the same length",
+                                   path, lineno, n, out->cols);
             break;
         }
         out->cols = (size_t)n;
@@ -204,13 +209,13 @@ static int read_npy(const veer_cli_conn *cc, const char *path, veer_cli_matrix *
         return veer_cli_complain(cc, VEER_CLI_INPUT, path, "%s: out of memory", path);
     }
     for (uint64_t i = 0; i < a.count; i++) {
-        double x = a.dtype == VEER_NPY_F32 ? ((const float *)a.data)[i]
-                                           : ((const double *)a.data)[i];
+        double x =
+            a.dtype == VEER_NPY_F32 ? ((const float *)a.data)[i] : ((const double *)a.data)[i];
         if (!isfinite(x) || !isfinite((float)x)) {
             rc = veer_cli_complain(cc, VEER_CLI_INPUT, path,
                                    "%s row %llu, column %llu: %s; every value must be finite "
-                                   "(and fit a float32)", path,
-                                   (unsigned long long)(i / out->cols + 1),
+                                   "(and fit a float32)",
+                                   path, (unsigned long long)(i / out->cols + 1),
                                    (unsigned long long)(i % out->cols + 1), nonfinite_name(x));
             break;
         }

@@ -61,7 +61,8 @@ static int run(int argc, char **argv)
             free(rest);
             return veer_cli_complain(&cc, VEER_CLI_USAGE, "--deadline-us",
                                      "--deadline-us takes microseconds from 1 to 60000000, not "
-                                     "'%s'", v);
+                                     "'%s'",
+                                     v);
         }
     }
     rc = veer_cli_positional(&cc, n_rest, rest, pos, 2, &got);
@@ -83,7 +84,8 @@ static int run(int argc, char **argv)
     if (state.cols != m->state_dim) {
         rc = veer_cli_complain(&cc, VEER_CLI_USAGE, "STATE",
                                "the state has %zu values but model %s reads %u (first feature: "
-                               "%s)", state.cols, m->model_version, m->state_dim,
+                               "%s)",
+                               state.cols, m->model_version, m->state_dim,
                                m->state_dim ? m->feature_names[0] : "");
         goto done;
     }
@@ -91,7 +93,8 @@ static int run(int argc, char **argv)
     if (m->action_dim > sizeof action / sizeof *action) {
         rc = veer_cli_complain(&cc, VEER_CLI_REFUSED, "action_dim",
                                "the model's action has %u values; this command prints at most "
-                               "256", m->action_dim);
+                               "256",
+                               m->action_dim);
         goto done;
     }
     veer_client_act_result res;

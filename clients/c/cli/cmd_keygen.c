@@ -68,8 +68,10 @@ static int run(int argc, char **argv)
                                  "give OUT_PREFIX, e.g. `veer keygen keys/supervisor`");
     char pub[41], sec[41];
     if (zmq_curve_keypair(pub, sec) != 0)
-        return veer_cli_complain(&cc, VEER_CLI_REFUSED, "", "libzmq cannot make CURVE keys: %s "
-                                 "(is it built with CURVE support?)", zmq_strerror(errno));
+        return veer_cli_complain(&cc, VEER_CLI_REFUSED, "",
+                                 "libzmq cannot make CURVE keys: %s "
+                                 "(is it built with CURVE support?)",
+                                 zmq_strerror(errno));
     char pub_path[4096], sec_path[4096];
     if ((size_t)snprintf(pub_path, sizeof pub_path, "%s.pub", prefix) >= sizeof pub_path ||
         (size_t)snprintf(sec_path, sizeof sec_path, "%s.secret", prefix) >= sizeof sec_path)
@@ -95,5 +97,5 @@ static int run(int argc, char **argv)
     return VEER_CLI_OK;
 }
 
-const veer_cli_command veer_cli_cmd_keygen = {"keygen", "write a CURVE key pair for veerd or a client",
-                                              run};
+const veer_cli_command veer_cli_cmd_keygen = {"keygen",
+                                              "write a CURVE key pair for veerd or a client", run};

@@ -193,7 +193,8 @@ static int put(veer_cli_conn *cc, int argc, char **argv)
         if (n_rewards != states.rows) {
             rc = veer_cli_complain(cc, VEER_CLI_INPUT, rewards,
                                    "%s holds %zu rewards but %s holds %zu states; give one "
-                                   "reward per state", rewards, n_rewards, samples, states.rows);
+                                   "reward per state",
+                                   rewards, n_rewards, samples, states.rows);
             goto done;
         }
         spec.count = (uint32_t)states.rows;
@@ -231,7 +232,8 @@ static int put(veer_cli_conn *cc, int argc, char **argv)
             if (values.cols != n_goals) {
                 rc = veer_cli_complain(cc, VEER_CLI_USAGE, "--weights",
                                        "--weights has %zu values for %zu goals; give one weight "
-                                       "per --goal", values.cols, n_goals);
+                                       "per --goal",
+                                       values.cols, n_goals);
                 goto done;
             }
         }
