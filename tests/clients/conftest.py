@@ -55,14 +55,14 @@ class Veerd:
         if transport == "ipc":
             self.act = f"ipc://{self.dir}/act"
             self.admin = f"ipc://{self.dir}/admin"
-            events = f"ipc://{self.dir}/events"
+            self.events = f"ipc://{self.dir}/events"
         else:
             p = [free_port() for _ in range(3)]
             self.act, self.admin = f"tcp://127.0.0.1:{p[0]}", f"tcp://127.0.0.1:{p[1]}"
-            events = f"tcp://127.0.0.1:{p[2]}"
+            self.events = f"tcp://127.0.0.1:{p[2]}"
         self.log = open(os.path.join(self.dir, "veerd.log"), "w+")
         self.argv = [VEERD, "--bundle", bundle, "--state-dir", os.path.join(self.dir, "state"),
-                     "--act", self.act, "--admin", self.admin, "--events", events, *extra]
+                     "--act", self.act, "--admin", self.admin, "--events", self.events, *extra]
         self.start()
 
     def start(self):

@@ -290,3 +290,38 @@ def test_reference_rewards_and_options_reach_veerd(ctx, tmp_path):
     assert not np.allclose(plain["z"], corr["z"]) and not np.allclose(corr["z"], corr_r["z"])
     py = c.put_samples("corr_py", s, w, cov_correction=True, ridge=0.5)
     assert py.digest.hex() == corr_r["digest"]
+
+
+def test_events_show_what_the_cli_changed(ctx):
+    """The Python events subscriber sees the switch the CLI made: same channel, tasks, epoch."""
+    from veer.client import Events
+    veerd, b, c = ctx
+    d = b.model.state_dim
+    cli_json(veerd, "task", "put", "a", "--goal", fmt(np.full(d, 0.1)))
+    cli_json(veerd, "task", "put", "b", "--goal", fmt(np.full(d, -0.1)))
+    with Events(veerd.events, ["veer.switch"]) as ev:
+        # A subscription takes a moment to reach the publisher: switch until one is seen.
+        got, switches = None, []
+        for i in range(50):
+            switches.append(cli_json(veerd, "switch", "arm", "ab"[i % 2]))
+            got = ev.recv(timeout_s=0.1)
+            if got is not None:
+                break
+        assert got is not None, "no switch event within 50 switches"
+        topic, e = got
+        assert topic == "veer.switch" and e.WhichOneof("body") == "switched"
+        mine = [s for s in switches if s["epoch"] == e.switched.epoch]
+        assert len(mine) == 1, (e, switches)
+        assert e.switched.channel == "arm" and e.switched.to_task == mine[0]["task"]
+        # Every later switch arrives in order, each with the next epoch and a higher seq.
+        k = switches.index(mine[0])
+        nxt = cli_json(veerd, "switch", "arm", "a" if switches[-1]["task"] == "b" else "b")
+        expected = switches[k + 1:] + [nxt]
+        prev = e
+        for want in expected:
+            got = ev.recv(timeout_s=5.0)
+            assert got is not None, f"missing the event for {want}"
+            cur = got[1]
+            assert cur.switched.epoch == want["epoch"] and cur.switched.to_task == want["task"]
+            assert cur.switched.epoch == prev.switched.epoch + 1 and cur.seq > prev.seq
+            prev = cur

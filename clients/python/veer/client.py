@@ -31,7 +31,7 @@ import itertools
 import math
 import select
 import time
-from typing import List, Optional
+from typing import List, Optional, Sequence
 
 import numpy as np
 import zmq
@@ -470,11 +470,48 @@ class Client:
                       fallbacks=s.fallbacks, deadline_misses=s.deadline_misses)
 
 
+class Events:
+    """A subscriber on veerd's events socket (PUB): channel switches, stored and dropped tasks,
+    drift alarms, deadline bursts and model loads, each as a topic and a ``wire.Event``.
+
+    ``topics`` are prefixes ("veer.switch", "veer.task", ...); the default takes everything.
+    Like any ZeroMQ subscriber it only sees events published after its subscription reached
+    veerd (a few milliseconds after connecting); a gap in ``Event.seq`` means events were lost
+    because this subscriber fell behind.
+    """
+
+    def __init__(self, endpoint: str, topics: Sequence[str] = ("",), *,
+                 context: Optional[zmq.Context] = None):
+        self._sock = (context or zmq.Context.instance()).socket(zmq.SUB)
+        self._sock.setsockopt(zmq.LINGER, 0)
+        for t in topics:
+            self._sock.setsockopt(zmq.SUBSCRIBE, t.encode())
+        self._sock.connect(endpoint)
+
+    def recv(self, timeout_s: Optional[float] = None):
+        """The next (topic, Event), or None when ``timeout_s`` passes first (None: wait)."""
+        if timeout_s is not None and not self._sock.poll(max(0, int(timeout_s * 1000))):
+            return None
+        frames = self._sock.recv_multipart()
+        ev = wire.Event()
+        ev.ParseFromString(frames[-1])
+        return frames[0].decode(errors="replace"), ev
+
+    def close(self) -> None:
+        self._sock.close(linger=0)
+
+    def __enter__(self) -> "Events":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+
 def flag_names(flags: int) -> List[str]:
     """The names of the VEER_ACT_* bits set in ``flags``."""
     return [n for b, n in FLAG_NAMES.items() if flags & b]
 
 
-__all__ = ["Client", "VeerError", "VeerTimeout", "Model", "ActResult", "Task", "Channel",
+__all__ = ["Client", "Events", "VeerError", "VeerTimeout", "Model", "ActResult", "Task", "Channel",
            "Status", "flag_names", "CLIPPED", "FALLBACK", "NONFINITE", "DEADLINE", "NO_TASK",
            "OUT_OF_COVERAGE", "DEFAULT_ACT", "DEFAULT_ADMIN"]
