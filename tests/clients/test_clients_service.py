@@ -187,6 +187,19 @@ def test_refusals_name_code_and_field(ctx, tmp_path):
     assert err["name"] == "VEER_ENOTASK", err
     r = run(veerd, "act", "arm", fmt(np.zeros(d + 1)))
     assert r.returncode == USAGE and f"reads {d}" in r.stderr
+    # The Python client passes veerd's refusals through with code and field; a NaN reward is
+    # judged by veerd (the client sends what it is given), a bad state locally before sending.
+    rw = np.ones(5, np.float32)
+    rw[3] = np.nan
+    with pytest.raises(VeerError) as e:
+        c.put_samples("nan", np.ones((5, d), np.float32), rw)
+    assert e.value.name == "VEER_ENONFINITE" and "rewards" in e.value.field, e.value
+    with pytest.raises(VeerError) as e:
+        c.act("arm", np.zeros(d + 1))
+    assert e.value.name == "VEER_EDIM" and e.value.field == "state"
+    with pytest.raises(VeerError) as e:
+        c.switch("arm", "nowhere")
+    assert e.value.name == "VEER_ENOTASK"
     # None of that changed what was stored.
     assert [t.name for t in c.list_tasks()] == ["home"]
 
