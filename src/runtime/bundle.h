@@ -15,9 +15,9 @@
 
 /* Limits that keep sizes computed from a bundle's fields far from overflow and workspaces
  * within reason; a real model is well inside them. */
-#define VEER__MAX_DIM 65536u          /* state_dim, z_dim, action dims and counts, layer widths */
+#define VEER__MAX_DIM 65536u /* state_dim, z_dim, action dims and counts, layer widths */
 #define VEER__MAX_EMBED_COUNT (1u << 24) /* per index: exact as a float */
-#define VEER__MAX_LAYERS 256u         /* per branch or head */
+#define VEER__MAX_LAYERS 256u            /* per branch or head */
 #define VEER__MAX_BRANCHES 16u
 #define VEER__MAX_INPUTS 16u
 
@@ -33,8 +33,8 @@ struct veer_bundle {
     uint32_t *index_features, *index_counts;
     uint32_t index_check_count;
     uint8_t digest[32];
-    void *blocks;        /* the chain of blocks this bundle owns */
-    size_t memory;       /* bytes in the chain */
+    void *blocks;  /* the chain of blocks this bundle owns */
+    size_t memory; /* bytes in the chain */
 };
 
 /* An aligned block of n bytes owned by `b`, or NULL when out of memory. */

@@ -52,7 +52,10 @@ static int copy_str(struct veer_bundle *b, const char *src, const char **dst)
     return 0;
 }
 
-static uint32_t max_u32(uint32_t a, uint32_t b) { return a > b ? a : b; }
+static uint32_t max_u32(uint32_t a, uint32_t b)
+{
+    return a > b ? a : b;
+}
 
 static int build_layers(struct veer_bundle *b, Veer__Bundle__Layer *const *src, size_t count,
                         veer__layer **out, uint32_t *max_width)
@@ -273,8 +276,8 @@ static int build_info(struct veer_bundle *b, const Veer__Bundle__Model *m, veer_
             idx[i] = (float)i;
         b->action_index = idx;
     }
-    info->fallback_action = copy_bytes(
-        b, m->fallback_action, m->n_fallback_action * sizeof *m->fallback_action, &failed);
+    info->fallback_action = copy_bytes(b, m->fallback_action,
+                                       m->n_fallback_action * sizeof *m->fallback_action, &failed);
     if (failed)
         return VEER_ENOMEM;
     if ((rc = build_b_features(b, m)) != 0)

@@ -15,8 +15,7 @@
 
 /* Field paths are truncated at VEER_ERROR_FIELD_MAX on purpose; vsnprintf keeps the compiler's
  * truncation warning, meant for data loss, away from a deliberate cut. */
-static __attribute__((format(printf, 3, 4))) char *fieldf(char *buf, size_t n, const char *fmt,
-                                                           ...)
+static __attribute__((format(printf, 3, 4))) char *fieldf(char *buf, size_t n, const char *fmt, ...)
 {
     va_list ap;
     va_start(ap, fmt);
@@ -34,8 +33,8 @@ static int check_finite(const float *x, size_t n, const char *path, veer_error *
         if (!isfinite(x[i])) {
             char f[VEER_ERROR_FIELD_MAX];
             return veer__error_set(err, VEER_ENONFINITE, FIELD(f, "%s[%zu]", path, i),
-                                   "%s[%zu] is %g; every weight and statistic must be finite",
-                                   path, i, (double)x[i]);
+                                   "%s[%zu] is %g; every weight and statistic must be finite", path,
+                                   i, (double)x[i]);
         }
     return 0;
 }
@@ -79,11 +78,12 @@ static int check_layers(Veer__Bundle__Layer *const *layers, size_t count, uint32
                 return veer__error_set(err, VEER_EFIELD, FIELD(f, "%s.kind", p),
                                        "%s is an embedding; it must be the first layer of a "
                                        "branch that reads only state features or the action "
-                                       "as_index", p);
+                                       "as_index",
+                                       p);
             if (l->n_counts != in)
                 return veer__error_set(err, VEER_EFIELD, FIELD(f, "%s.counts", p),
-                                       "%s.counts has %zu values; it needs one per input (%zu)",
-                                       p, l->n_counts, in);
+                                       "%s.counts has %zu values; it needs one per input (%zu)", p,
+                                       l->n_counts, in);
             uint64_t rows = 1;
             for (size_t j = 0; j < l->n_counts; j++) {
                 if (l->counts[j] == 0 || l->counts[j] > VEER__MAX_EMBED_COUNT)
@@ -116,7 +116,8 @@ static int check_layers(Veer__Bundle__Layer *const *layers, size_t count, uint32
                 if (l->n_weight != 0 && l->n_weight != outd)
                     return veer__error_set(err, VEER_EDIMCHAIN, FIELD(f, "%s.weight", p),
                                            "%s.weight (gain) has %zu values; it needs %zu (or "
-                                           "none)", p, l->n_weight, outd);
+                                           "none)",
+                                           p, l->n_weight, outd);
                 if (l->n_bias != 0 && l->n_bias != outd)
                     return veer__error_set(err, VEER_EDIMCHAIN, FIELD(f, "%s.bias", p),
                                            "%s.bias has %zu values; it needs %zu (or none)", p,
@@ -184,8 +185,8 @@ static int check_inputs(const Veer__Bundle__Branch *br, const char *path,
             for (size_t j = 0; j < in->n_features; j++)
                 if (in->features[j] >= m->state_dim)
                     return veer__error_set(err, VEER_EFIELD, FIELD(f, "%s.features[%zu]", p, j),
-                                           "%s.features[%zu] is %u; the state has %u features",
-                                           p, j, in->features[j], m->state_dim);
+                                           "%s.features[%zu] is %u; the state has %u features", p,
+                                           j, in->features[j], m->state_dim);
             if (in->n_features > VEER__MAX_DIM)
                 return veer__error_set(err, VEER_EFIELD, FIELD(f, "%s.features", p),
                                        "%s.features lists too many features", p);
@@ -228,8 +229,8 @@ static int check_net(const Veer__Bundle__Network *net, const char *name,
     char f[VEER_ERROR_FIELD_MAX], p[VEER_ERROR_FIELD_MAX];
     int rc;
     if (net == NULL || net->n_branches == 0)
-        return veer__error_set(err, VEER_ENETMISSING, name, "the bundle has no %s network%s",
-                               name, net ? " (it has no branches)" : "");
+        return veer__error_set(err, VEER_ENETMISSING, name, "the bundle has no %s network%s", name,
+                               net ? " (it has no branches)" : "");
     if (net->n_branches > VEER__MAX_BRANCHES)
         return veer__error_set(err, VEER_EFIELD, FIELD(f, "%s.branches", name),
                                "%s has %zu branches; at most %u", name, net->n_branches,
@@ -250,8 +251,7 @@ static int check_net(const Veer__Bundle__Network *net, const char *name,
                             (br->inputs[i]->kind == VEER__BUNDLE__INPUT_KIND__INPUT_ACTION &&
                              br->inputs[i]->as_index);
         if ((rc = check_layers(br->layers, br->n_layers, width, index_inputs,
-                               FIELD(f, "%s.layers", p),
-                               &outs[b], err)) != 0)
+                               FIELD(f, "%s.layers", p), &outs[b], err)) != 0)
             return rc;
         total += outs[b];
     }
@@ -268,7 +268,8 @@ static int check_net(const Veer__Bundle__Network *net, const char *name,
         if (net->bilinear_k != 0 || net->matrix_branch != 0 || net->bilinear_bias)
             return veer__error_set(err, VEER_EFIELD, FIELD(f, "%s.bilinear_k", name),
                                    "%s: bilinear_k, matrix_branch and bilinear_bias are for a "
-                                   "bilinear merge only", name);
+                                   "bilinear merge only",
+                                   name);
         if (total > VEER__MAX_DIM)
             return veer__error_set(err, VEER_EFIELD, FIELD(f, "%s.branches", name),
                                    "%s's branches add up to %llu values; at most %u", name,
@@ -292,8 +293,8 @@ static int check_net(const Veer__Bundle__Network *net, const char *name,
         uint32_t mb = net->matrix_branch, vb = 1 - mb;
         if (outs[vb] != k)
             return veer__error_set(err, VEER_EDIMCHAIN, FIELD(f, "%s.bilinear_k", name),
-                                   "%s.branches[%u] gives %u values but bilinear_k is %u", name,
-                                   vb, outs[vb], k);
+                                   "%s.branches[%u] gives %u values but bilinear_k is %u", name, vb,
+                                   outs[vb], k);
         if (outs[mb] % rows != 0)
             return veer__error_set(err, VEER_EDIMCHAIN, FIELD(f, "%s.branches[%u]", name, mb),
                                    "%s.branches[%u] gives %u values, not a multiple of the %u "
@@ -365,8 +366,7 @@ static int check_action(const Veer__Bundle__Model *m, veer_error *err)
     if (as->kind == VEER__BUNDLE__ACTION_KIND__ACTION_CONTINUOUS) {
         if (as->dim == 0 || as->dim > VEER__MAX_DIM)
             return veer__error_set(err, VEER_EFIELD, "action.dim",
-                                   "action.dim is %u; it must be in 1..%u", as->dim,
-                                   VEER__MAX_DIM);
+                                   "action.dim is %u; it must be in 1..%u", as->dim, VEER__MAX_DIM);
         if (as->count != 0)
             return veer__error_set(err, VEER_EFIELD, "action.count",
                                    "action.count is for discrete actions only");
@@ -407,8 +407,8 @@ static int check_action(const Veer__Bundle__Model *m, veer_error *err)
                                    "bounds are for continuous actions only");
         if (as->n_names != 0 && as->n_names != as->count)
             return veer__error_set(err, VEER_EFIELD, "action.names",
-                                   "action.names has %zu names; action.count is %u",
-                                   as->n_names, as->count);
+                                   "action.names has %zu names; action.count is %u", as->n_names,
+                                   as->count);
     } else {
         return veer__error_set(err, VEER_EFIELD, "action.kind",
                                "action.kind is %d; it must be CONTINUOUS or DISCRETE",
@@ -449,8 +449,8 @@ static int check_symmetric(const float *a, uint32_t n, const char *path, veer_er
             if (fabsf(x - y) > 1e-5f * scale)
                 return veer__error_set(err, VEER_EFIELD,
                                        FIELD(f, "%s[%zu]", path, (size_t)i * n + j),
-                                       "%s is not symmetric: [%u][%u] = %g but [%u][%u] = %g",
-                                       path, i, j, (double)x, j, i, (double)y);
+                                       "%s is not symmetric: [%u][%u] = %g but [%u][%u] = %g", path,
+                                       i, j, (double)x, j, i, (double)y);
         }
     return 0;
 }
@@ -493,12 +493,11 @@ static int check_stats(const Veer__Bundle__Model *m, veer_error *err)
         for (size_t j = 1; j < per; j++) {
             size_t at = i * per + j;
             if (st->quantile_edges[at] < st->quantile_edges[at - 1])
-                return veer__error_set(err, VEER_ESTATSSIZE,
-                                       FIELD(f, "stats.quantile_edges[%zu]", at),
-                                       "the quantile edges of feature %zu decrease at edge %zu "
-                                       "(%g after %g)",
-                                       i, j, (double)st->quantile_edges[at],
-                                       (double)st->quantile_edges[at - 1]);
+                return veer__error_set(
+                    err, VEER_ESTATSSIZE, FIELD(f, "stats.quantile_edges[%zu]", at),
+                    "the quantile edges of feature %zu decrease at edge %zu "
+                    "(%g after %g)",
+                    i, j, (double)st->quantile_edges[at], (double)st->quantile_edges[at - 1]);
         }
     if ((rc = check_symmetric(st->cov, m->state_dim, "stats.cov", err)) != 0)
         return rc;
@@ -581,8 +580,8 @@ int veer__bundle_check(const Veer__Bundle__Model *m, veer_error *err)
         (rc = check_net(m->backward, "backward", m, ROLE_B, m->z_dim, "z_dim", err)) != 0)
         return rc;
     if (continuous) {
-        if ((rc = check_net(m->actor, "actor", m, ROLE_ACTOR, m->action->dim, "action.dim",
-                            err)) != 0)
+        if ((rc = check_net(m->actor, "actor", m, ROLE_ACTOR, m->action->dim, "action.dim", err)) !=
+            0)
             return rc;
     } else {
         if (m->actor != NULL)

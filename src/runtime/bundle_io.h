@@ -26,7 +26,7 @@ int veer__bundle_write_model(const Veer__Bundle__Model *m, const char *path, vee
 /* Frames an already serialized payload with the given version and checksum (both as given, so
  * tests can forge a wrong version or checksum). `checksum` may be NULL for none. */
 int veer__bundle_frame(const uint8_t *payload, size_t payload_len, uint32_t format_version,
-                       const uint8_t *checksum, size_t checksum_len, uint8_t **out,
-                       size_t *out_len, veer_error *err);
+                       const uint8_t *checksum, size_t checksum_len, uint8_t **out, size_t *out_len,
+                       veer_error *err);
 
 #endif

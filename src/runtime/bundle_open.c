@@ -96,7 +96,8 @@ int veer_bundle_open_mem(const void *data, size_t len, veer_bundle **out, veer_e
     *out = NULL;
     if (data == NULL && len > 0)
         return veer__error_set(err, VEER_EINVAL, "data", "data is NULL");
-    if (len < VEER__BUNDLE_MAGIC_LEN || memcmp(bytes, VEER_BUNDLE_MAGIC, VEER__BUNDLE_MAGIC_LEN) != 0)
+    if (len < VEER__BUNDLE_MAGIC_LEN ||
+        memcmp(bytes, VEER_BUNDLE_MAGIC, VEER__BUNDLE_MAGIC_LEN) != 0)
         return veer__error_set(err, VEER_ENOTBUNDLE, "magic",
                                "the data does not start with \"%s\": not a model bundle",
                                VEER_BUNDLE_MAGIC);
@@ -176,7 +177,10 @@ fail_stat:
     return rc;
 }
 
-const veer_model_info *veer_bundle_info(const veer_bundle *bundle) { return &bundle->info; }
+const veer_model_info *veer_bundle_info(const veer_bundle *bundle)
+{
+    return &bundle->info;
+}
 
 size_t veer_bundle_memory(const veer_bundle *bundle)
 {

@@ -13,8 +13,8 @@
 #include "veer/runtime.h"
 
 int veer__bundle_frame(const uint8_t *payload, size_t payload_len, uint32_t format_version,
-                       const uint8_t *checksum, size_t checksum_len, uint8_t **out,
-                       size_t *out_len, veer_error *err)
+                       const uint8_t *checksum, size_t checksum_len, uint8_t **out, size_t *out_len,
+                       veer_error *err)
 {
     Veer__Bundle__BundleFile file = VEER__BUNDLE__BUNDLE_FILE__INIT;
     file.format_version = format_version;

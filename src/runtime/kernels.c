@@ -20,8 +20,8 @@ void veer__k_linear(size_t n, uint32_t in, uint32_t out, const float *x, const f
         beta = 1.0f;
     }
     if (n == 1)
-        cblas_sgemv(CblasRowMajor, CblasNoTrans, (int)out, (int)in, 1.0f, w, (int)in, x, 1, beta,
-                    y, 1);
+        cblas_sgemv(CblasRowMajor, CblasNoTrans, (int)out, (int)in, 1.0f, w, (int)in, x, 1, beta, y,
+                    1);
     else
         cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasTrans, (int)n, (int)out, (int)in, 1.0f, x,
                     (int)in, w, (int)in, beta, y, (int)out);
@@ -63,6 +63,21 @@ static inline float pick(uint32_t cond, float a, float b)
     return float_of((bits_of(a) & m) | (bits_of(b) & ~m));
 }
 
+/* tanh(x) = x + x^3 P(x^2) for |x| < 0.625: P's coefficients, constant term first. */
+static const float tanh_small[5] = {-0.3333328068256378f, 0.133314311504364f, -0.05373915657401085f,
+                                    0.020637862384319305f, -0.005704042501747608f};
+/* e^r for |r| <= ln2 / 2: 1/k! for k = 0..7. */
+static const float exp_taylor[8] = {1.0f,      1.0f,       0.5f,       1.0f / 6,
+                                    1.0f / 24, 1.0f / 120, 1.0f / 720, 1.0f / 5040};
+
+static inline float horner(const float *c, int n, float x)
+{
+    float p = c[n - 1];
+    for (int k = n - 2; k >= 0; k--)
+        p = p * x + c[k];
+    return p;
+}
+
 void veer__k_tanh(size_t count, float *x)
 {
     /* Range tests compare the bits of |x| as integers, ordered like the floats. */
@@ -76,8 +91,7 @@ void veer__k_tanh(size_t count, float *x)
         uint32_t abits = bits_of(v) & 0x7fffffffu, sign = bits_of(v) & 0x80000000u;
         float a = float_of(abits);
         float t = a * a;
-        float p = (((-0.005704042501747608f * t + 0.020637862384319305f) * t -
-                    0.05373915657401085f) * t + 0.133314311504364f) * t - 0.3333328068256378f;
+        float p = horner(tanh_small, 5, t);
         float small = a + a * t * p;
 
         /* NaN and large values take 10, so the conversion to int below is always defined. */
@@ -85,8 +99,7 @@ void veer__k_tanh(size_t count, float *x)
         const float magic = 12582912.0f; /* 1.5 * 2^23: adding it rounds to an integer */
         float kf = (y * 1.4426950408889634f + magic) - magic;
         float r = (y - kf * 0.693145751953125f) - kf * 1.428606765330187e-06f;
-        float e = ((((((r * (1.0f / 5040) + 1.0f / 720) * r + 1.0f / 120) * r + 1.0f / 24) * r +
-                     1.0f / 6) * r + 0.5f) * r + 1.0f) * r + 1.0f;
+        float e = horner(exp_taylor, 8, r);
         float scale = float_of((uint32_t)((int32_t)kf + 127) << 23);
         float big = 1.0f - 2.0f / (e * scale + 1.0f);
 
@@ -161,8 +174,8 @@ void veer__k_copy_cols(size_t n, uint32_t width, const float *src, size_t src_st
         memcpy(dst + r * dst_stride, src + r * src_stride, (size_t)width * sizeof *src);
 }
 
-long veer__k_embedding(size_t n, uint32_t in, const uint32_t *counts, uint32_t out,
-                       const float *x, const float *table, float *y)
+long veer__k_embedding(size_t n, uint32_t in, const uint32_t *counts, uint32_t out, const float *x,
+                       const float *table, float *y)
 {
     for (size_t r = 0; r < n; r++) {
         const float *xr = x + r * in;

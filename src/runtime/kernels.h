@@ -40,8 +40,8 @@ void veer__k_copy_cols(size_t n, uint32_t width, const float *src, size_t src_st
  * y's row is row `joint` of table (rows x out). Returns 0, or -1 - r for the first row r holding
  * an index that is not an integer in range; that row and those after it are not written, and
  * the table is never read out of bounds. */
-long veer__k_embedding(size_t n, uint32_t in, const uint32_t *counts, uint32_t out,
-                       const float *x, const float *table, float *y);
+long veer__k_embedding(size_t n, uint32_t in, const uint32_t *counts, uint32_t out, const float *x,
+                       const float *table, float *y);
 
 /* Row-wise dot products: v[r] = a[r,:] · z for n rows of dim values (Q = F(s, a, z) · z). */
 void veer__k_row_dot(size_t n, uint32_t dim, const float *a, const float *z, float *v);

@@ -48,10 +48,10 @@ enum veer__merge_kind {
 typedef struct veer__layer {
     int kind;
     uint32_t in_dim, out_dim;
-    const float *weight; /* LINEAR: out x in; EMBEDDING: rows x out; LAYER_NORM: gain or NULL */
-    const float *bias;   /* LINEAR, LAYER_NORM: out values or NULL */
-    float eps;           /* LAYER_NORM */
-    float norm;          /* RESCALE, resolved (never 0) */
+    const float *weight;    /* LINEAR: out x in; EMBEDDING: rows x out; LAYER_NORM: gain or NULL */
+    const float *bias;      /* LINEAR, LAYER_NORM: out values or NULL */
+    float eps;              /* LAYER_NORM */
+    float norm;             /* RESCALE, resolved (never 0) */
     const uint32_t *counts; /* EMBEDDING: in_dim counts */
 } veer__layer;
 
@@ -64,10 +64,10 @@ typedef struct veer__input {
 typedef struct veer__branch {
     veer__input *inputs;
     uint32_t input_count;
-    uint32_t in_width;        /* sum of input widths */
+    uint32_t in_width; /* sum of input widths */
     veer__layer *layers;
     uint32_t layer_count;
-    uint32_t out_dim;         /* last layer's out_dim, or in_width with no layers */
+    uint32_t out_dim; /* last layer's out_dim, or in_width with no layers */
     int reads_action, reads_task;
 } veer__branch;
 
@@ -75,16 +75,16 @@ typedef struct veer__net {
     veer__branch *branches;
     uint32_t branch_count;
     int merge;
-    uint32_t bilinear_k;      /* BILINEAR: length of the vector branch's output */
-    uint32_t matrix_branch;   /* BILINEAR: which branch is the matrix */
+    uint32_t bilinear_k;    /* BILINEAR: length of the vector branch's output */
+    uint32_t matrix_branch; /* BILINEAR: which branch is the matrix */
     int bilinear_bias;
-    uint32_t branch_width;    /* sum of the branch outputs (they sit side by side) */
-    uint32_t merged_width;    /* CONCAT: branch_width; BILINEAR: the out of vᵀM */
+    uint32_t branch_width; /* sum of the branch outputs (they sit side by side) */
+    uint32_t merged_width; /* CONCAT: branch_width; BILINEAR: the out of vᵀM */
     veer__layer *head;
     uint32_t head_count;
     uint32_t out_dim;
-    uint32_t max_in_width;    /* widest branch input row */
-    uint32_t max_width;       /* widest layer output or merged row */
+    uint32_t max_in_width; /* widest branch input row */
+    uint32_t max_width;    /* widest layer output or merged row */
 } veer__net;
 
 /* Where each row's inputs come from. Row r reads state row r / state_rep, action row
@@ -106,10 +106,10 @@ typedef struct veer__rows {
 /* One thread's scratch for evaluating networks on up to `rows` rows. All 64-byte aligned. */
 typedef struct veer__net_bufs {
     size_t rows;
-    float *in;        /* rows x max_in_width */
-    float *ping;      /* rows x max_width */
-    float *pong;      /* rows x max_width */
-    float *branches;  /* rows x max branch_width */
+    float *in;       /* rows x max_in_width */
+    float *ping;     /* rows x max_width */
+    float *pong;     /* rows x max_width */
+    float *branches; /* rows x max branch_width */
 } veer__net_bufs;
 
 /* Floats each buffer needs for `net` at `rows` rows, folded into *sizes with max():

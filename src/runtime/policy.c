@@ -28,8 +28,14 @@ static int act_continuous(veer_workspace *ws, size_t m, const float *states, con
     const veer_bundle *b = ws->bundle;
     const veer_model_info *info = &b->info;
     uint32_t adim = info->action_dim;
-    veer__rows rows = {.n = m, .state_dim = info->state_dim, .states = states, .state_rep = 1,
-                       .action_dim = adim, .zs = z, .z_dim = info->z_dim, .z_shared = 1};
+    veer__rows rows = {.n = m,
+                       .state_dim = info->state_dim,
+                       .states = states,
+                       .state_rep = 1,
+                       .action_dim = adim,
+                       .zs = z,
+                       .z_dim = info->z_dim,
+                       .z_shared = 1};
     const float *y;
     int rc = veer__net_eval(&b->actor, &ws->bufs, &rows, &y);
     if (rc != 0)
@@ -83,9 +89,16 @@ static int act_discrete(veer_workspace *ws, size_t m, const float *states, const
     const veer_bundle *b = ws->bundle;
     const veer_model_info *info = &b->info;
     uint32_t count = info->action_count;
-    veer__rows rows = {.n = m * count, .state_dim = info->state_dim, .states = states,
-                       .state_rep = count, .actions = b->action_index, .action_dim = 1,
-                       .action_cycle = count, .zs = z, .z_dim = info->z_dim, .z_shared = 1};
+    veer__rows rows = {.n = m * count,
+                       .state_dim = info->state_dim,
+                       .states = states,
+                       .state_rep = count,
+                       .actions = b->action_index,
+                       .action_dim = 1,
+                       .action_cycle = count,
+                       .zs = z,
+                       .z_dim = info->z_dim,
+                       .z_shared = 1};
     const float *fo;
     int rc = veer__net_eval(&b->forward, &ws->bufs, &rows, &fo);
     if (rc != 0)
@@ -143,9 +156,8 @@ int veer_act_batch(veer_workspace *ws, size_t n, const float *states, const floa
         float *a = actions + done * info->action_dim;
         float *v = values ? values + done : ws->slice_values;
         uint32_t *f = flags ? flags + done : ws->slice_flags;
-        int rc = info->action_kind == VEER_ACTION_CONTINUOUS
-                     ? act_continuous(ws, m, s, z, a, v, f)
-                     : act_discrete(ws, m, s, z, a, v, f);
+        int rc = info->action_kind == VEER_ACTION_CONTINUOUS ? act_continuous(ws, m, s, z, a, v, f)
+                                                             : act_discrete(ws, m, s, z, a, v, f);
         if (rc != 0)
             return rc;
     }

@@ -15,7 +15,10 @@
 #define VEER__MAX_ROWS (1u << 24)
 
 /* Floats rounded up to whole 64-byte lines, so every piece of the block stays aligned. */
-static size_t lines(size_t floats) { return (floats + 15) & ~(size_t)15; }
+static size_t lines(size_t floats)
+{
+    return (floats + 15) & ~(size_t)15;
+}
 
 int veer_workspace_create(const veer_bundle *bundle, uint32_t max_batch, veer_workspace **out,
                           veer_error *err)
@@ -25,8 +28,8 @@ int veer_workspace_create(const veer_bundle *bundle, uint32_t max_batch, veer_wo
         return veer__error_set(err, VEER_EINVAL, out ? "bundle" : "out", "must not be NULL");
     *out = NULL;
     if (max_batch == 0 || max_batch > VEER__MAX_BATCH)
-        return veer__error_set(err, VEER_EINVAL, "max_batch", "max_batch is %u; it must be in 1..%u",
-                               max_batch, VEER__MAX_BATCH);
+        return veer__error_set(err, VEER_EINVAL, "max_batch",
+                               "max_batch is %u; it must be in 1..%u", max_batch, VEER__MAX_BATCH);
 
     const veer_model_info *info = &bundle->info;
     size_t per_state = info->action_kind == VEER_ACTION_DISCRETE ? info->action_count : 1;
@@ -98,4 +101,7 @@ int veer_blas_threads(int n)
     return prev;
 }
 
-const char *veer_blas_kernel(void) { return openblas_get_corename(); }
+const char *veer_blas_kernel(void)
+{
+    return openblas_get_corename();
+}

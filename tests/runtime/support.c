@@ -41,7 +41,10 @@ void fx_free_all(void)
 
 static uint64_t fx_state = 0x9E3779B97F4A7C15ull;
 
-void fx_srand(uint64_t s) { fx_state = s ? s : 1; }
+void fx_srand(uint64_t s)
+{
+    fx_state = s ? s : 1;
+}
 
 double fx_uniform(double lo, double hi)
 {
@@ -270,14 +273,14 @@ static Veer__Bundle__Model *base_model(void)
 
     /* B(s) reads belt_speed and gripper_y, rescaled to norm sqrt(z_dim). */
     static const uint32_t b_feat[2] = {0, 2};
-    m->backward = fx_net(
-        1,
-        (Veer__Bundle__Branch *[]){fx_branch(
-            1, (Veer__Bundle__Input *[]){fx_input(IN_STATE, 2, b_feat, 0)}, 4,
-            (Veer__Bundle__Layer *[]){fx_linear(2, 6, 1.5f),
-                                      fx_simple(VEER__BUNDLE__LAYER_KIND__LAYER_RELU, 6),
-                                      fx_linear(6, ZD, 1.5f), fx_rescale(ZD, 0.0f)})},
-        0, NULL);
+    m->backward =
+        fx_net(1,
+               (Veer__Bundle__Branch *[]){fx_branch(
+                   1, (Veer__Bundle__Input *[]){fx_input(IN_STATE, 2, b_feat, 0)}, 4,
+                   (Veer__Bundle__Layer *[]){fx_linear(2, 6, 1.5f),
+                                             fx_simple(VEER__BUNDLE__LAYER_KIND__LAYER_RELU, 6),
+                                             fx_linear(6, ZD, 1.5f), fx_rescale(ZD, 0.0f)})},
+               0, NULL);
     return m;
 }
 
@@ -296,24 +299,24 @@ Veer__Bundle__Model *fx_continuous_model(void)
     m->fallback_action = fx_floats(2, (const float[]){0.0f, 1.0f});
 
     static const uint32_t f_feat[2] = {1, 3};
-    m->forward = fx_net(
-        2,
-        (Veer__Bundle__Branch *[]){
-            fx_branch(2,
-                      (Veer__Bundle__Input *[]){fx_input(IN_STATE, 0, NULL, 0),
-                                                fx_input(IN_ACTION, 0, NULL, 0)},
-                      2,
-                      (Veer__Bundle__Layer *[]){
-                          fx_linear(SD + 2, 8, 1.5f),
-                          fx_simple(VEER__BUNDLE__LAYER_KIND__LAYER_RELU, 8)}),
-            fx_branch(2,
-                      (Veer__Bundle__Input *[]){fx_input(IN_STATE, 2, f_feat, 0),
-                                                fx_input(IN_TASK, 0, NULL, 0)},
-                      2,
-                      (Veer__Bundle__Layer *[]){
-                          fx_linear(2 + ZD, 8, 1.5f),
-                          fx_simple(VEER__BUNDLE__LAYER_KIND__LAYER_TANH, 8)})},
-        2, (Veer__Bundle__Layer *[]){fx_layer_norm(16, 1e-5f, 1), fx_linear(16, ZD, 1.5f)});
+    m->forward =
+        fx_net(2,
+               (Veer__Bundle__Branch *[]){
+                   fx_branch(2,
+                             (Veer__Bundle__Input *[]){fx_input(IN_STATE, 0, NULL, 0),
+                                                       fx_input(IN_ACTION, 0, NULL, 0)},
+                             2,
+                             (Veer__Bundle__Layer *[]){
+                                 fx_linear(SD + 2, 8, 1.5f),
+                                 fx_simple(VEER__BUNDLE__LAYER_KIND__LAYER_RELU, 8)}),
+                   fx_branch(2,
+                             (Veer__Bundle__Input *[]){fx_input(IN_STATE, 2, f_feat, 0),
+                                                       fx_input(IN_TASK, 0, NULL, 0)},
+                             2,
+                             (Veer__Bundle__Layer *[]){
+                                 fx_linear(2 + ZD, 8, 1.5f),
+                                 fx_simple(VEER__BUNDLE__LAYER_KIND__LAYER_TANH, 8)})},
+               2, (Veer__Bundle__Layer *[]){fx_layer_norm(16, 1e-5f, 1), fx_linear(16, ZD, 1.5f)});
 
     m->actor = fx_net(
         1,
@@ -351,10 +354,9 @@ Veer__Bundle__Model *fx_discrete_model(void)
                       (Veer__Bundle__Input *[]){fx_input(IN_STATE, 0, NULL, 0),
                                                 fx_input(IN_ACTION, 0, NULL, 0)},
                       3,
-                      (Veer__Bundle__Layer *[]){
-                          fx_linear(SD + 5, 10, 1.5f),
-                          fx_simple(VEER__BUNDLE__LAYER_KIND__LAYER_RELU, 10),
-                          fx_linear(10, (3 + 1) * 6, 1.5f)}),
+                      (Veer__Bundle__Layer *[]){fx_linear(SD + 5, 10, 1.5f),
+                                                fx_simple(VEER__BUNDLE__LAYER_KIND__LAYER_RELU, 10),
+                                                fx_linear(10, (3 + 1) * 6, 1.5f)}),
             fx_branch(1, (Veer__Bundle__Input *[]){fx_input(IN_TASK, 0, NULL, 0)}, 1,
                       (Veer__Bundle__Layer *[]){fx_linear(ZD, 3, 1.5f)})},
         2,

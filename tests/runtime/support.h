@@ -22,7 +22,7 @@ void fx_free_all(void);
 /* A deterministic generator (xorshift64*, Vigna 2016), so failures reproduce. */
 void fx_srand(uint64_t s);
 double fx_uniform(double lo, double hi);
-float *fx_random(size_t n, float scale); /* uniform in [-scale, scale] */
+float *fx_random(size_t n, float scale);         /* uniform in [-scale, scale] */
 float *fx_floats(size_t n, const float *values); /* a copy, or zeros when values is NULL */
 
 Veer__Bundle__Layer *fx_linear(uint32_t in, uint32_t out, float scale);

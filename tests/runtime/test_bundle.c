@@ -152,23 +152,74 @@ static void expect_reject(Veer__Bundle__Model *m, int code, const char *field)
     assert_null(b);
 }
 
-static void m_dim_chain(Veer__Bundle__Model *m) { m->forward->branches[1]->layers[0]->in_dim = 6; }
-static void m_head_out(Veer__Bundle__Model *m) { m->forward->n_head = 1; }
-static void m_bias_len(Veer__Bundle__Model *m) { m->actor->head[0]->n_bias = 1; }
-static void m_no_actor(Veer__Bundle__Model *m) { m->actor = NULL; }
-static void m_no_backward(Veer__Bundle__Model *m) { m->backward = NULL; }
-static void m_nan_weight(Veer__Bundle__Model *m) { m->backward->branches[0]->layers[2]->weight[4] = NAN; }
-static void m_inf_stat(Veer__Bundle__Model *m) { m->stats->mean[1] = INFINITY; }
-static void m_low_high(Veer__Bundle__Model *m) { m->action->low[1] = 2.5f; }
-static void m_fallback(Veer__Bundle__Model *m) { m->fallback_action[1] = -0.5f; }
-static void m_ref_shape(Veer__Bundle__Model *m) { m->reference->count = 6; }
-static void m_stats_size(Veer__Bundle__Model *m) { m->stats->n_quantile_edges = 11; }
-static void m_edges(Veer__Bundle__Model *m) { m->stats->quantile_edges[5] = -9.0f; }
-static void m_discount(Veer__Bundle__Model *m) { m->discount = 1.0f; }
-static void m_feature(Veer__Bundle__Model *m) { m->forward->branches[1]->inputs[0]->features[1] = 4; }
-static void m_names(Veer__Bundle__Model *m) { m->feature_names[3] = m->feature_names[0]; }
-static void m_eps(Veer__Bundle__Model *m) { m->forward->head[0]->eps = 0.0f; }
-static void m_merge(Veer__Bundle__Model *m) { m->forward->merge = VEER__BUNDLE__MERGE_KIND__MERGE_UNSET; }
+static void m_dim_chain(Veer__Bundle__Model *m)
+{
+    m->forward->branches[1]->layers[0]->in_dim = 6;
+}
+static void m_head_out(Veer__Bundle__Model *m)
+{
+    m->forward->n_head = 1;
+}
+static void m_bias_len(Veer__Bundle__Model *m)
+{
+    m->actor->head[0]->n_bias = 1;
+}
+static void m_no_actor(Veer__Bundle__Model *m)
+{
+    m->actor = NULL;
+}
+static void m_no_backward(Veer__Bundle__Model *m)
+{
+    m->backward = NULL;
+}
+static void m_nan_weight(Veer__Bundle__Model *m)
+{
+    m->backward->branches[0]->layers[2]->weight[4] = NAN;
+}
+static void m_inf_stat(Veer__Bundle__Model *m)
+{
+    m->stats->mean[1] = INFINITY;
+}
+static void m_low_high(Veer__Bundle__Model *m)
+{
+    m->action->low[1] = 2.5f;
+}
+static void m_fallback(Veer__Bundle__Model *m)
+{
+    m->fallback_action[1] = -0.5f;
+}
+static void m_ref_shape(Veer__Bundle__Model *m)
+{
+    m->reference->count = 6;
+}
+static void m_stats_size(Veer__Bundle__Model *m)
+{
+    m->stats->n_quantile_edges = 11;
+}
+static void m_edges(Veer__Bundle__Model *m)
+{
+    m->stats->quantile_edges[5] = -9.0f;
+}
+static void m_discount(Veer__Bundle__Model *m)
+{
+    m->discount = 1.0f;
+}
+static void m_feature(Veer__Bundle__Model *m)
+{
+    m->forward->branches[1]->inputs[0]->features[1] = 4;
+}
+static void m_names(Veer__Bundle__Model *m)
+{
+    m->feature_names[3] = m->feature_names[0];
+}
+static void m_eps(Veer__Bundle__Model *m)
+{
+    m->forward->head[0]->eps = 0.0f;
+}
+static void m_merge(Veer__Bundle__Model *m)
+{
+    m->forward->merge = VEER__BUNDLE__MERGE_KIND__MERGE_UNSET;
+}
 static void m_b_action(Veer__Bundle__Model *m)
 {
     m->backward->branches[0]->inputs[0]->kind = VEER__BUNDLE__INPUT_KIND__INPUT_ACTION;
@@ -183,8 +234,14 @@ static Veer__Bundle__Layer *ones_embedding(uint32_t in, uint32_t out)
     return fx_embedding(in, counts, out);
 }
 /* Embeddings look rows up by index: never in a head, never fed by z. */
-static void m_embed_head(Veer__Bundle__Model *m) { m->forward->head[0] = ones_embedding(16, 16); }
-static void m_embed_task(Veer__Bundle__Model *m) { m->actor->branches[0]->layers[0] = ones_embedding(7, 6); }
+static void m_embed_head(Veer__Bundle__Model *m)
+{
+    m->forward->head[0] = ones_embedding(16, 16);
+}
+static void m_embed_task(Veer__Bundle__Model *m)
+{
+    m->actor->branches[0]->layers[0] = ones_embedding(7, 6);
+}
 
 static void test_rejections(void **state)
 {
@@ -265,13 +322,13 @@ static void test_frame_rejections(void **state)
     size_t flen;
     memset(payload, 0xff, sizeof payload);
     crypto_generichash(digest, 32, payload, sizeof payload, NULL, 0);
-    assert_int_equal(veer__bundle_frame(payload, sizeof payload, 2, digest, 32, &framed, &flen,
-                                        &err), 0);
+    assert_int_equal(
+        veer__bundle_frame(payload, sizeof payload, 2, digest, 32, &framed, &flen, &err), 0);
     assert_int_equal(veer_bundle_open_mem(framed, flen, &b, &err), VEER_EVERSION);
     assert_string_equal(err.field, "format_version");
     veer__free(framed);
-    assert_int_equal(veer__bundle_frame(payload, sizeof payload, 1, digest, 32, &framed, &flen,
-                                        &err), 0);
+    assert_int_equal(
+        veer__bundle_frame(payload, sizeof payload, 1, digest, 32, &framed, &flen, &err), 0);
     assert_int_equal(veer_bundle_open_mem(framed, flen, &b, &err), VEER_EDECODE);
     assert_string_equal(err.field, "payload");
     veer__free(framed);

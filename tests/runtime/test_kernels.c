@@ -198,8 +198,8 @@ static void test_embedding(void **state)
 
     /* Indices that are not integers in range are refused, naming the first bad row, and never
      * read the table out of bounds (ASan would see it). */
-    const float bad[][2] = {{3, 0}, {0, 4}, {-1, 0}, {1.5f, 0}, {NAN, 0}, {0, INFINITY},
-                            {1e30f, 0}};
+    const float bad[][2] = {{3, 0},   {0, 4},        {-1, 0},   {1.5f, 0},
+                            {NAN, 0}, {0, INFINITY}, {1e30f, 0}};
     for (size_t k = 0; k < sizeof bad / sizeof bad[0]; k++) {
         float xb[4] = {1, 1, bad[k][0], bad[k][1]};
         assert_int_equal(veer__k_embedding(2, 2, counts, 2, xb, table, y), -2);

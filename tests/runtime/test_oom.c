@@ -20,7 +20,10 @@ static long fail_at;     /* the allocation number that fails; 0: none */
 static long calls;       /* allocations attempted since the counter was reset */
 static long outstanding; /* live allocations */
 
-static int should_fail(void) { return ++calls == fail_at; }
+static int should_fail(void)
+{
+    return ++calls == fail_at;
+}
 
 static void *t_malloc(size_t n)
 {
@@ -82,8 +85,8 @@ static void check_open(const Veer__Bundle__Model *m, int from_file)
         veer_error err;
         arm(n);
         long before = outstanding;
-        int rc = from_file ? veer_bundle_open(path, &b, &err)
-                           : veer_bundle_open_mem(buf, len, &b, &err);
+        int rc =
+            from_file ? veer_bundle_open(path, &b, &err) : veer_bundle_open_mem(buf, len, &b, &err);
         if (rc == 0) {
             assert_true(calls < n); /* every allocation was tried and none failed */
             veer_bundle_close(b);

@@ -87,7 +87,8 @@ static void check_policy(Veer__Bundle__Model *m, uint32_t max_batch)
                 assert_int_equal(flags[r], 0);
                 rq -= gap; /* the reference Q of the action libveer chose */
             }
-            double sc = q_scale(m, s, info->action_kind == VEER_ACTION_CONTINUOUS ? ra : &act[r], z);
+            double sc =
+                q_scale(m, s, info->action_kind == VEER_ACTION_CONTINUOUS ? ra : &act[r], z);
             assert_true(fabs(val[r] - rq) <= REL * sc);
             assert_true(fabs(v1 - rq) <= REL * sc);
         }
@@ -180,15 +181,14 @@ static Veer__Bundle__Model *worked_continuous(int normalized)
     Veer__Bundle__Model *m = fx_continuous_model();
     static const uint32_t first_two[2] = {0, 1};
     float w_actor[2 * 5] = {1, 0, 0, 0, 0, 0, 1, 0, 0, 0};
-    m->actor = fx_net(
-        1,
-        (Veer__Bundle__Branch *[]){fx_branch(
-            2,
-            (Veer__Bundle__Input *[]){
-                fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_STATE, 2, first_two, 0),
-                fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_TASK, 0, NULL, 0)},
-            1, (Veer__Bundle__Layer *[]){fx_linear_w(5, 2, w_actor, NULL)})},
-        0, NULL);
+    m->actor = fx_net(1,
+                      (Veer__Bundle__Branch *[]){fx_branch(
+                          2,
+                          (Veer__Bundle__Input *[]){
+                              fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_STATE, 2, first_two, 0),
+                              fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_TASK, 0, NULL, 0)},
+                          1, (Veer__Bundle__Layer *[]){fx_linear_w(5, 2, w_actor, NULL)})},
+                      0, NULL);
     m->actor_normalized = normalized;
     float w_f[3 * 9];
     for (int i = 0; i < 27; i++)
@@ -197,17 +197,16 @@ static Veer__Bundle__Model *worked_continuous(int normalized)
         1,
         (Veer__Bundle__Branch *[]){fx_branch(
             3,
-            (Veer__Bundle__Input *[]){
-                fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_STATE, 0, NULL, 0),
-                fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_ACTION, 0, NULL, 0),
-                fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_TASK, 0, NULL, 0)},
+            (Veer__Bundle__Input *[]){fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_STATE, 0, NULL, 0),
+                                      fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_ACTION, 0, NULL, 0),
+                                      fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_TASK, 0, NULL, 0)},
             1, (Veer__Bundle__Layer *[]){fx_linear_w(9, 3, w_f, NULL)})},
         0, NULL);
     return m;
 }
 
-static void act_one(veer_workspace *ws, const float *s, const float *z, float a0, float a1,
-                    float q, uint32_t flags)
+static void act_one(veer_workspace *ws, const float *s, const float *z, float a0, float a1, float q,
+                    uint32_t flags)
 {
     float a[2] = {-7, -7}, v = -7;
     uint32_t f = 99;
@@ -234,15 +233,16 @@ static void test_clip_worked_example(void **state)
     act_one(ws, (const float[]){-3, -2, 1, 1}, z, -1, 0, -1.5f, VEER_ACT_CLIPPED);
     /* Finite state, overflowing network: 0.5 * 3e38 * 4 > FLT_MAX, so F is infinite. The
      * fallback (0, 1) leaves with value 0 and both flags, and the call succeeds. */
-    act_one(ws, (const float[]){3e38f, 3e38f, 3e38f, 3e38f}, z, 0, 1, 0, VEER_ACT_FALLBACK | VEER_ACT_NONFINITE);
+    act_one(ws, (const float[]){3e38f, 3e38f, 3e38f, 3e38f}, z, 0, 1, 0,
+            VEER_ACT_FALLBACK | VEER_ACT_NONFINITE);
 
     /* Non-finite inputs are refused and nothing is written. */
     float a[2] = {-7, -7}, v = -7;
     uint32_t f = 99;
     assert_int_equal(veer_act(ws, (const float[]){NAN, 0, 0, 0}, z, a, &v, &f), VEER_ENONFINITE);
-    assert_int_equal(veer_act(ws, (const float[]){0, 0, 0, 0}, (const float[]){0, INFINITY, 0}, a,
-                              &v, &f),
-                     VEER_ENONFINITE);
+    assert_int_equal(
+        veer_act(ws, (const float[]){0, 0, 0, 0}, (const float[]){0, INFINITY, 0}, a, &v, &f),
+        VEER_ENONFINITE);
     assert_true(a[0] == -7 && a[1] == -7 && v == -7 && f == 99);
     float two[8] = {0, 0, 0, 0, 0, 0, NAN, 0}, a2[4] = {-7, -7, -7, -7};
     assert_int_equal(veer_act_batch(ws, 2, two, z, a2, NULL, NULL), VEER_ENONFINITE);
@@ -255,7 +255,8 @@ static void test_clip_worked_example(void **state)
     b = fx_open(worked_continuous(1));
     assert_int_equal(veer_workspace_create(b, 1, &ws, NULL), 0);
     act_one(ws, (const float[]){0.5f, -0.5f, 0, 0}, z, 0.5f, 0.5f, 0.5f * (0.0f + 1.0f + 1.0f), 0);
-    act_one(ws, (const float[]){1.5f, 0, 0, 0}, z, 1, 1, 0.5f * (1.5f + 2.0f + 1.0f), VEER_ACT_CLIPPED);
+    act_one(ws, (const float[]){1.5f, 0, 0, 0}, z, 1, 1, 0.5f * (1.5f + 2.0f + 1.0f),
+            VEER_ACT_CLIPPED);
     veer_workspace_destroy(ws);
     veer_bundle_close(b);
     fx_free_all();
@@ -272,9 +273,8 @@ static Veer__Bundle__Model *worked_discrete(void)
         1,
         (Veer__Bundle__Branch *[]){fx_branch(
             2,
-            (Veer__Bundle__Input *[]){
-                fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_ACTION, 0, NULL, 0),
-                fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_TASK, 0, NULL, 0)},
+            (Veer__Bundle__Input *[]){fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_ACTION, 0, NULL, 0),
+                                      fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_TASK, 0, NULL, 0)},
             1, (Veer__Bundle__Layer *[]){fx_linear_w(6, 3, w, NULL)})},
         0, NULL);
     return m;
@@ -321,23 +321,23 @@ static void test_embedding_state_index(void **state)
     /* F reads (action index, parcel_mass as a class 0..2) through one embedding table. */
     Veer__Bundle__Model *m = fx_discrete_model();
     static const uint32_t cls[1] = {3}, first_two[2] = {0, 1};
-    m->forward = fx_net(
-        2,
-        (Veer__Bundle__Branch *[]){
-            fx_branch(2,
-                      (Veer__Bundle__Input *[]){
-                          fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_ACTION, 0, NULL, 1),
-                          fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_STATE, 1, cls, 0)},
-                      2,
-                      (Veer__Bundle__Layer *[]){
-                          fx_embedding(2, (const uint32_t[]){5, 3}, 8),
-                          fx_simple(VEER__BUNDLE__LAYER_KIND__LAYER_RELU, 8)}),
-            fx_branch(2,
-                      (Veer__Bundle__Input *[]){
-                          fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_STATE, 2, first_two, 0),
-                          fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_TASK, 0, NULL, 0)},
-                      1, (Veer__Bundle__Layer *[]){fx_linear(5, 8, 1.5f)})},
-        1, (Veer__Bundle__Layer *[]){fx_linear(16, 3, 1.5f)});
+    m->forward =
+        fx_net(2,
+               (Veer__Bundle__Branch *[]){
+                   fx_branch(2,
+                             (Veer__Bundle__Input *[]){
+                                 fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_ACTION, 0, NULL, 1),
+                                 fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_STATE, 1, cls, 0)},
+                             2,
+                             (Veer__Bundle__Layer *[]){
+                                 fx_embedding(2, (const uint32_t[]){5, 3}, 8),
+                                 fx_simple(VEER__BUNDLE__LAYER_KIND__LAYER_RELU, 8)}),
+                   fx_branch(2,
+                             (Veer__Bundle__Input *[]){
+                                 fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_STATE, 2, first_two, 0),
+                                 fx_input(VEER__BUNDLE__INPUT_KIND__INPUT_TASK, 0, NULL, 0)},
+                             1, (Veer__Bundle__Layer *[]){fx_linear(5, 8, 1.5f)})},
+               1, (Veer__Bundle__Layer *[]){fx_linear(16, 3, 1.5f)});
     veer_bundle *b = fx_open(m);
     veer_workspace *ws = NULL;
     assert_int_equal(veer_workspace_create(b, 1, &ws, NULL), 0);
@@ -446,14 +446,10 @@ static void test_shared_bundle_threads(void **state)
 int main(void)
 {
     const struct CMUnitTest tests[] = {
-        cmocka_unit_test(test_continuous_policy),
-        cmocka_unit_test(test_discrete_policy),
-        cmocka_unit_test(test_eval_networks),
-        cmocka_unit_test(test_clip_worked_example),
-        cmocka_unit_test(test_argmax_worked_example),
-        cmocka_unit_test(test_embedding_state_index),
-        cmocka_unit_test(test_workspace_and_blas),
-        cmocka_unit_test(test_shared_bundle_threads),
+        cmocka_unit_test(test_continuous_policy),     cmocka_unit_test(test_discrete_policy),
+        cmocka_unit_test(test_eval_networks),         cmocka_unit_test(test_clip_worked_example),
+        cmocka_unit_test(test_argmax_worked_example), cmocka_unit_test(test_embedding_state_index),
+        cmocka_unit_test(test_workspace_and_blas),    cmocka_unit_test(test_shared_bundle_threads),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }
