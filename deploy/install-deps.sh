@@ -7,7 +7,7 @@ set -euo pipefail
 packages=(
   build-essential cmake pkg-config
   libzmq3-dev libprotobuf-c-dev protobuf-c-compiler protobuf-compiler
-  libopenblas-dev liblapacke-dev libuv1-dev libcmocka-dev libxxhash-dev libsodium-dev libcjson-dev
+  libopenblas-dev liblapacke-dev libuv1-dev libcmocka-dev libxxhash-dev libsodium-dev libcjson-dev libhttp-parser-dev
   python3-numpy python3-scipy python3-zmq python3-protobuf python3-pytest
   python3-prometheus-client tmux
 )
