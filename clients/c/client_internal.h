@@ -53,8 +53,10 @@ void veer__client_release_last(veer_client *c);
 extern ProtobufCAllocator veer__client_heap;
 void veer__client_arena_reset(veer_client *c);
 
-/* Sends one request (Request.id = id) with the envelope veerd expects. `buf` may be NULL, then
- * a buffer is allocated for the call. Returns 0, or VEER_EIO / VEER_ETIMEDOUT with `err`. */
+/* Sends one request without blocking, behind the envelope veerd expects (an empty delimiter on
+ * the admin socket, none on the act socket). Packs into a stack buffer, or a heap one for long
+ * requests (supervisor calls only). Returns 0, VEER_ETIMEDOUT when no connection is up to take
+ * it, or VEER_EIO / VEER_ENOMEM, with `err`. */
 int veer__client_send(veer_client *c, void *sock, const Veer__Wire__Request *req, veer_error *err);
 
 /* Receives one message without blocking into c->recv_buf: returns its body length, -1 when
