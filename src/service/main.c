@@ -61,16 +61,16 @@ static void check_drift(veerd *d)
     d->drift_seq = r->publish_seq;
     if (r->psi_overall != d->psi_level) {
         d->psi_level = r->psi_overall;
-        veer__events_drift(d->store.events, "service", "psi", d->store.info->feature_names[r->psi_max_feature],
-                           r->psi_max, (uint32_t)r->psi_overall);
         veer__log_warn("drift: PSI level %s (largest %.3f on %s)", veer_drift_level_name(r->psi_overall),
                        r->psi_max, d->store.info->feature_names[r->psi_max_feature]);
+        veer__events_drift(d->store.events, "service", "psi", d->store.info->feature_names[r->psi_max_feature],
+                           r->psi_max, (uint32_t)r->psi_overall);
     }
     if (r->exceed_level != d->exceed_level) {
         d->exceed_level = r->exceed_level;
-        veer__events_drift(d->store.events, "service", "exceedance", "", r->exceed_rate, (uint32_t)r->exceed_level);
         veer__log_warn("drift: exceedance level %s (%.1f %% of the window beyond the training p99 distance)",
                        veer_drift_level_name(r->exceed_level), 100.0 * r->exceed_rate);
+        veer__events_drift(d->store.events, "service", "exceedance", "", r->exceed_rate, (uint32_t)r->exceed_level);
     }
 }
 

@@ -10,6 +10,7 @@
 #include <cmocka.h>
 
 #include <pthread.h>
+#include <sched.h>
 #include <stdio.h>
 #include <string.h>
 
@@ -87,7 +88,8 @@ static void test_switch_and_reclaim(void **state)
 typedef struct reader_state {
     veer__channels *t;
     atomic_int stop;
-    uint64_t reads, torn, backwards, max_epoch, distinct;
+    _Atomic uint64_t reads;
+    uint64_t torn, backwards, max_epoch, distinct;
 } reader_state;
 
 static void *reader(void *arg)
@@ -110,7 +112,7 @@ static void *reader(void *arg)
                 if (e != last)
                     r->distinct++;
                 last = e;
-                r->reads++;
+                atomic_fetch_add(&r->reads, 1);
             }
         }
         veer__channels_quiescent(r->t); /* holds no pointer from here */
@@ -134,12 +136,18 @@ static void test_concurrent_reader(void **state)
         for (int i = 0; i < Z_DIM; i++)
             z[i] = (float)e; /* exact in float up to 2^24 */
         assert_int_equal(veer__channels_switch(r.t, ch, (e % 2) ? "odd" : "even", z, Z_DIM, e, NULL), 0);
-        if (e % 64 == 0)
+        if (e % 64 == 0) {
             waiting = veer__channels_reclaim(r.t);
+            /* Let the reader in between batches, so the two really interleave even when the
+             * scheduler would run this loop to the end first. */
+            uint64_t seen = atomic_load(&r.reads);
+            while (atomic_load(&r.reads) == seen)
+                sched_yield();
+        }
     }
     atomic_store(&r.stop, 1);
     pthread_join(th, NULL);
-    assert_true(r.reads > 0);
+    assert_true(atomic_load(&r.reads) > 0);
     assert_int_equal(r.torn, 0);
     assert_int_equal(r.backwards, 0);
     assert_true(r.max_epoch <= SWITCHES);
@@ -148,7 +156,7 @@ static void test_concurrent_reader(void **state)
     assert_true(waiting <= SWITCHES / 2);
     veer__channels_quiescent(r.t);
     assert_int_equal(veer__channels_reclaim(r.t), 0);
-    print_message("reader: %llu reads, %llu distinct epochs seen\n", (unsigned long long)r.reads,
+    print_message("reader: %llu reads, %llu distinct epochs seen\n", (unsigned long long)atomic_load(&r.reads),
                   (unsigned long long)r.distinct);
     veer__channels_destroy(r.t);
 }
