@@ -46,9 +46,11 @@ struct veer__act {
     uint32_t in_window;
     uint64_t policy_p99_ns; /* 0 until the first window is full */
     veer_drift *drift;      /* NULL without training statistics */
-    veer_hist_recorder *latency;
+    veer_hist_recorder *stage[VEER__ACT_STAGE_COUNT]; /* all NULL with monitors off */
+    uint64_t reply_start_ns; /* when serve_act began packing its reply; 0 otherwise */
 
     _Atomic uint64_t acts, fallbacks, deadline_misses, errors, no_task;
+    _Atomic uint64_t errors_by_code[VEER__ACT_ERROR_CODES];
 };
 
 static void count(_Atomic uint64_t *c) { atomic_fetch_add_explicit(c, 1, memory_order_relaxed); }
@@ -76,6 +78,8 @@ static size_t pack_reply(veer__act *a, Veer__Wire__Reply *r)
 static size_t error_reply(veer__act *a, uint64_t id, const veer_error *err)
 {
     count(&a->errors);
+    if (err->code < 0 && -err->code < (int)VEER__ACT_ERROR_CODES)
+        count(&a->errors_by_code[-err->code]);
     return veer__wire_pack_error(id, err, a->reply_buf, a->reply_cap);
 }
 
@@ -148,6 +152,8 @@ static size_t serve_act(veer__act *a, uint64_t id, const Veer__Wire__ActRequest 
             int rc = veer_act(a->ws, q->state, task->z, a->action, &value, &flags);
             uint64_t t2 = veer__now_ns();
             record_policy_time(a, t2 - t1);
+            if (a->stage[VEER__ACT_STAGE_POLICY] != NULL)
+                veer_hist_recorder_record(a->stage[VEER__ACT_STAGE_POLICY], t2 - t1);
             if (rc < 0) {
                 use_fallback(a, &value);
                 flags = VEER_ACT_FALLBACK | VEER_ACT_NONFINITE;
@@ -171,7 +177,8 @@ static size_t serve_act(veer__act *a, uint64_t id, const Veer__Wire__ActRequest 
     /* The coverage flag warns that this action came from a policy with little data behind it;
      * a fallback action did not, so it is not flagged (the monitor still counts the state). */
     ar.flags = flags | ((flags & VEER_ACT_FALLBACK) ? 0 : coverage);
-    ar.server_us = (uint32_t)((veer__now_ns() - t0) / 1000u);
+    a->reply_start_ns = veer__now_ns();
+    ar.server_us = (uint32_t)((a->reply_start_ns - t0) / 1000u);
     Veer__Wire__Reply r = VEER__WIRE__REPLY__INIT;
     r.protocol = VEER__PROTOCOL;
     r.id = id;
@@ -189,6 +196,12 @@ static void serve_one(veer__act *a)
     veer_error err;
     Veer__Wire__Request *req = NULL;
 
+    /* Unpacked before the checks below so that the decode stage is timed on its own. */
+    if (!a->msg.overflow && len <= a->cfg.max_message_bytes) {
+        req = veer__wire__request__unpack(&a->arena.allocator, len, payload);
+        if (a->stage[VEER__ACT_STAGE_DECODE] != NULL)
+            veer_hist_recorder_record(a->stage[VEER__ACT_STAGE_DECODE], veer__now_ns() - t0);
+    }
     if (a->msg.overflow) {
         veer__error_set(&err, VEER_EBADMSG, "request", "a request is one frame after the routing frames");
         out = error_reply(a, 0, &err);
@@ -196,7 +209,7 @@ static void serve_one(veer__act *a)
         veer__error_set(&err, VEER_EMSGSIZE, "request", "the request has %zu bytes; the act socket takes at most %u",
                         len, a->cfg.max_message_bytes);
         out = error_reply(a, 0, &err);
-    } else if ((req = veer__wire__request__unpack(&a->arena.allocator, len, payload)) == NULL) {
+    } else if (req == NULL) {
         veer__error_set(&err, VEER_EBADMSG, "request", "%zu bytes that do not decode as a veer.wire.Request", len);
         out = error_reply(a, 0, &err);
     } else if ((id = req->id, req->protocol != VEER__PROTOCOL)) {
@@ -228,7 +241,13 @@ static void serve_one(veer__act *a)
     }
     veer__wire_send(a->socket, &a->msg, a->reply_buf, out);
     veer__arena_reset(&a->arena);
-    veer_hist_recorder_record(a->latency, veer__now_ns() - t0);
+    if (a->stage[VEER__ACT_STAGE_TOTAL] != NULL) {
+        uint64_t t_end = veer__now_ns();
+        if (a->reply_start_ns != 0)
+            veer_hist_recorder_record(a->stage[VEER__ACT_STAGE_REPLY], t_end - a->reply_start_ns);
+        veer_hist_recorder_record(a->stage[VEER__ACT_STAGE_TOTAL], t_end - t0);
+    }
+    a->reply_start_ns = 0;
 }
 
 static void *act_main(void *arg)
@@ -261,7 +280,8 @@ static void act_free(veer__act *a)
     veer_workspace_destroy(a->ws);
     veer__arena_free(&a->arena);
     veer_drift_destroy(a->drift);
-    veer_hist_recorder_destroy(a->latency);
+    for (int i = 0; i < VEER__ACT_STAGE_COUNT; i++)
+        veer_hist_recorder_destroy(a->stage[i]);
     veer_hist_destroy(a->window[0]);
     veer_hist_destroy(a->window[1]);
     veer__free(a->reply_buf);
@@ -298,12 +318,14 @@ int veer__act_start(const veer__act_config *cfg, veer__act **out, veer_error *er
     }
     if ((rc = veer_workspace_create(cfg->bundle, 1, &a->ws, err)) < 0)
         goto fail;
-    if (veer_hist_recorder_create(&a->latency) != 0) {
-        rc = veer__error_set(err, VEER_ENOMEM, "act", NULL);
-        goto fail;
+    for (int i = 0; i < VEER__ACT_STAGE_COUNT && !cfg->monitors_off; i++) {
+        if (veer_hist_recorder_create(&a->stage[i]) != 0) {
+            rc = veer__error_set(err, VEER_ENOMEM, "act", NULL);
+            goto fail;
+        }
     }
     veer_drift_training train;
-    if (info->has_stats && veer_drift_training_from_model(info, &train, NULL) == 0 &&
+    if (!cfg->monitors_off && info->has_stats && veer_drift_training_from_model(info, &train, NULL) == 0 &&
         (rc = veer_drift_create(&train, NULL, &a->drift, err)) < 0)
         goto fail;
 
@@ -347,4 +369,16 @@ void veer__act_counters_get(const veer__act *a, veer__act_counters *out)
 }
 
 struct veer_drift *veer__act_drift(veer__act *a) { return a->drift; }
-struct veer_hist_recorder *veer__act_latency(veer__act *a) { return a->latency; }
+struct veer_hist_recorder *veer__act_latency(veer__act *a) { return a->stage[VEER__ACT_STAGE_TOTAL]; }
+
+struct veer_hist_recorder *veer__act_stage(veer__act *a, veer__act_stage_id stage)
+{
+    return stage >= 0 && stage < VEER__ACT_STAGE_COUNT ? a->stage[stage] : NULL;
+}
+
+uint64_t veer__act_errors_by_code(const veer__act *a, int code)
+{
+    if (code >= 0 || -code >= (int)VEER__ACT_ERROR_CODES)
+        return 0;
+    return atomic_load_explicit(&((veer__act *)a)->errors_by_code[-code], memory_order_relaxed);
+}

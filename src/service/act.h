@@ -39,7 +39,23 @@ typedef struct veer__act_config {
     uint32_t default_deadline_us;
     uint32_t max_message_bytes;
     const uint8_t *server_secret_key; /* 32 bytes: require CURVE; NULL: no authentication */
+    int monitors_off; /* 1: no drift monitor, no stage latency recorders (for the overhead
+                         benchmark); the coverage flag is then never set */
 } veer__act_config;
+
+/* Stages of an act request with their own latency recorder. The time a request spends queued
+ * inside libzmq before the thread takes it is not measurable here (the request carries no send
+ * time), so there is no queue-wait stage. */
+typedef enum veer__act_stage {
+    VEER__ACT_STAGE_DECODE = 0, /* unpacking the Request into the arena */
+    VEER__ACT_STAGE_POLICY = 1, /* veer_act: the networks (only when the policy ran) */
+    VEER__ACT_STAGE_REPLY = 2,  /* packing the Reply and handing it to libzmq */
+    VEER__ACT_STAGE_TOTAL = 3,  /* off the socket to handed back: every request */
+    VEER__ACT_STAGE_COUNT = 4,
+} veer__act_stage_id;
+
+/* Act error replies are counted per code, for codes VEER_E1 .. VEER_E(VEER__ACT_ERROR_CODES-1). */
+#define VEER__ACT_ERROR_CODES 128
 
 typedef struct veer__act_counters {
     uint64_t acts, fallbacks, deadline_misses, errors, no_task;
@@ -60,6 +76,13 @@ struct veer_drift *veer__act_drift(veer__act *a);
 /* Arrival-to-reply times of act requests (ns), for the metrics endpoint: take intervals with
  * veer_hist_recorder_take from one other thread. */
 struct veer_hist_recorder *veer__act_latency(veer__act *a);
+
+/* The recorder of one stage (VEER__ACT_STAGE_TOTAL is veer__act_latency's). NULL with
+ * monitors off. Same reading rule. */
+struct veer_hist_recorder *veer__act_stage(veer__act *a, veer__act_stage_id stage);
+
+/* Error replies so far with code `code` (a negative VEER_E*; 0 for codes out of range). */
+uint64_t veer__act_errors_by_code(const veer__act *a, int code);
 
 /* Counters so far (any thread; each read atomically). */
 void veer__act_counters_get(const veer__act *a, veer__act_counters *out);
