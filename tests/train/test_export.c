@@ -1,0 +1,377 @@
+/* The trainer's bundles as the runtime serves them, and its run-level promises.
+ *
+ *  - Round trip: a bundle written by the trainer is opened by libveer (veer_bundle_open, which
+ *    validates it) and the runtime's F, B and actor give the trainer's own outputs on fresh
+ *    inputs (for two F heads: their average, which the export folds into one network).
+ *  - Drift statistics against a direct double-precision computation here (mean, population
+ *    covariance, NumPy-style linear-interpolation quantiles), Cov(B) = E[BBᵀ] against B
+ *    evaluated by the runtime over the log's next states.
+ *  - Determinism: two runs with the same flags on one thread give byte-identical bundles, and
+ *    a run stopped half-way and resumed from its checkpoint gives the same bundle again.
+ */
+#include <math.h>
+#include <setjmp.h>
+#include <stdarg.h>
+#include <stddef.h>
+#include <stdint.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <unistd.h>
+
+#include <cmocka.h>
+
+#include "base/base.h"
+#include "base/npy.h"
+#include "train/train.h"
+#include "veer/runtime.h"
+
+static char dir[256];
+
+static void path_in(char *out, size_t cap, const char *name)
+{
+    snprintf(out, cap, "%s/%s", dir, name);
+}
+
+static double rnd(uint64_t *s)
+{
+    *s = *s * 6364136223846793005ull + 1442695040888963407ull;
+    return (double)(*s >> 11) / 9007199254740992.0;
+}
+
+/* A log of n transitions of a 5-feature state with 2 continuous actions in [-1, 2] x [0, 1]. */
+static void write_cont_log(size_t n)
+{
+    float *s = malloc(n * 5 * sizeof *s), *a = malloc(n * 2 * sizeof *a);
+    float *ns = malloc(n * 5 * sizeof *ns);
+    uint64_t st = 42;
+    for (size_t i = 0; i < n; i++) {
+        for (int j = 0; j < 5; j++)
+            s[i * 5 + j] = (float)(rnd(&st) * (j + 1));
+        a[i * 2] = (float)(-1.0 + 3.0 * rnd(&st));
+        a[i * 2 + 1] = (float)rnd(&st);
+        for (int j = 0; j < 5; j++)
+            ns[i * 5 + j] = s[i * 5 + j] + 0.1f * a[i * 2 + (j & 1)];
+    }
+    char p[512];
+    path_in(p, sizeof p, "s.npy");
+    assert_int_equal(veer__npy_write(p, VEER_NPY_F32, 2, (uint64_t[]){n, 5}, s, NULL), 0);
+    path_in(p, sizeof p, "a.npy");
+    assert_int_equal(veer__npy_write(p, VEER_NPY_F32, 2, (uint64_t[]){n, 2}, a, NULL), 0);
+    path_in(p, sizeof p, "ns.npy");
+    assert_int_equal(veer__npy_write(p, VEER_NPY_F32, 2, (uint64_t[]){n, 5}, ns, NULL), 0);
+    free(s), free(a), free(ns);
+}
+
+/* A 3 x 4 grid with 3 actions: index states for the table layout. */
+static void write_table_log(size_t n)
+{
+    float *s = malloc(n * 2 * sizeof *s), *a = malloc(n * sizeof *a), *ns = malloc(n * 2 * sizeof *ns);
+    uint64_t st = 7;
+    for (size_t i = 0; i < n; i++) {
+        s[i * 2] = (float)(int)(rnd(&st) * 3);
+        s[i * 2 + 1] = (float)(int)(rnd(&st) * 4);
+        a[i] = (float)(int)(rnd(&st) * 3);
+        ns[i * 2] = s[i * 2];
+        ns[i * 2 + 1] = a[i] == 1 && s[i * 2 + 1] < 3 ? s[i * 2 + 1] + 1 : s[i * 2 + 1];
+    }
+    char p[512];
+    path_in(p, sizeof p, "ts.npy");
+    assert_int_equal(veer__npy_write(p, VEER_NPY_F32, 2, (uint64_t[]){n, 2}, s, NULL), 0);
+    path_in(p, sizeof p, "ta.npy");
+    assert_int_equal(veer__npy_write(p, VEER_NPY_F32, 1, (uint64_t[]){n}, a, NULL), 0);
+    path_in(p, sizeof p, "tns.npy");
+    assert_int_equal(veer__npy_write(p, VEER_NPY_F32, 2, (uint64_t[]){n, 2}, ns, NULL), 0);
+    free(s), free(a), free(ns);
+}
+
+static char paths[8][512];
+
+static void cont_config(veer_train_config *c, const char *out)
+{
+    memset(c, 0, sizeof *c);
+    assert_int_equal(veer__train_preset(c, "small"), 0);
+    path_in(paths[0], 512, "s.npy");
+    path_in(paths[1], 512, "a.npy");
+    path_in(paths[2], 512, "ns.npy");
+    path_in(paths[3], 512, out);
+    c->states_path = paths[0];
+    c->actions_path = paths[1];
+    c->next_states_path = paths[2];
+    c->out_path = paths[3];
+    c->action_dim = 2;
+    c->low[0] = -1, c->high[0] = 2, c->low[1] = 0, c->high[1] = 1;
+    c->decision_step_s = 0.01f;
+    c->z_dim = 6, c->hidden = 16, c->b_hidden = 12, c->batch = 32, c->steps = 40;
+    c->ref_count = 50;
+    c->holdout = 0.1f;
+    c->threads = 1;
+}
+
+static void table_config(veer_train_config *c, const char *out)
+{
+    memset(c, 0, sizeof *c);
+    assert_int_equal(veer__train_preset(c, "tabular"), 0);
+    path_in(paths[4], 512, "ts.npy");
+    path_in(paths[5], 512, "ta.npy");
+    path_in(paths[6], 512, "tns.npy");
+    path_in(paths[7], 512, out);
+    c->states_path = paths[4];
+    c->actions_path = paths[5];
+    c->next_states_path = paths[6];
+    c->out_path = paths[7];
+    c->action_count = 3;
+    c->state_counts[0] = 3, c->state_counts[1] = 4, c->nstate_counts = 2;
+    c->decision_step_s = 1.0f;
+    c->z_dim = 4, c->bilinear_k = 5, c->batch = 16, c->steps = 30;
+    c->threads = 1;
+}
+
+static void close_to(const char *what, size_t i, double got, double want, double tol)
+{
+    if (!(fabs(got - want) <= tol * fmax(1.0, fabs(want))))
+        fail_msg("%s[%zu]: runtime %.7g, trainer/reference %.7g", what, i, got, want);
+}
+
+/* Trains in memory, exports, reopens with libveer and compares the networks. */
+static void roundtrip(veer_train_config *c)
+{
+    veer__tlog_spec spec = {c->states_path, c->actions_path, c->next_states_path, NULL,
+                            c->action_count, c->action_count ? 1 : c->action_dim, c->low, c->high,
+                            c->arch == VEER_TRAIN_TABLE ? c->nstate_counts : 0, c->state_counts};
+    veer__tlog log;
+    veer_error err;
+    assert_int_equal(veer__tlog_load(&spec, &log, &err), 0);
+    veer__trainer *t;
+    if (veer__trainer_create(c, &log, &t, &err) != 0)
+        fail_msg("create: %s", err.message);
+    for (int i = 0; i < 25; i++)
+        assert_int_equal(veer__trainer_step(t, NULL), 0);
+    if (veer__train_export(t, c->out_path, "test", "2026-01-01T00:00:00Z", &err) != 0)
+        fail_msg("export: %s", err.message);
+
+    veer_bundle *b;
+    if (veer_bundle_open(c->out_path, &b, &err) != 0)
+        fail_msg("the runtime refused the trainer's bundle: %s (%s)", err.message, err.field);
+    veer_workspace *ws;
+    assert_int_equal(veer_workspace_create(b, 64, &ws, &err), 0);
+    const veer_model_info *mi = veer_bundle_info(b);
+    size_t n = 16, D = log.state_dim, A = log.action_dim, d = t->d;
+    assert_int_equal(mi->state_dim, D);
+    assert_int_equal(mi->z_dim, d);
+
+    /* Fresh inputs: logged states and actions, random task vectors. */
+    float *s = malloc(n * D * sizeof *s), *a = malloc(n * A * sizeof *a), *z = malloc(n * d * sizeof *z);
+    float *got = malloc(n * (d > A ? d : A) * sizeof *got), *want = calloc(n * d, sizeof *want);
+    uint64_t st = 99;
+    for (size_t i = 0; i < n; i++) {
+        memcpy(s + i * D, log.states + (i * 7 % log.n) * D, D * sizeof(float));
+        memcpy(a + i * A, log.actions + (i * 5 % log.n) * A, A * sizeof(float));
+        for (size_t j = 0; j < d; j++)
+            z[i * d + j] = (float)(rnd(&st) * 2 - 1);
+    }
+    const float *y;
+    for (uint32_t h = 0; h < t->heads; h++) {
+        assert_int_equal(veer__nn_forward(t->f[h], n, s, a, z, &y), 0);
+        for (size_t i = 0; i < n * d; i++)
+            want[i] += y[i] / (float)t->heads;
+    }
+    assert_int_equal(veer_eval_forward(ws, n, s, a, z, got), 0);
+    for (size_t i = 0; i < n * d; i++)
+        close_to("F", i, got[i], want[i], 1e-4);
+    assert_int_equal(veer__nn_forward(t->b, n, s, NULL, NULL, &y), 0);
+    assert_int_equal(veer_eval_backward(ws, n, s, got), 0);
+    for (size_t i = 0; i < n * d; i++)
+        close_to("B", i, got[i], y[i], 1e-4);
+    if (t->actor) {
+        assert_int_equal(veer__nn_forward(t->actor, n, s, NULL, z, &y), 0);
+        assert_int_equal(veer_eval_actor(ws, n, s, z, got), 0);
+        for (size_t i = 0; i < n * A; i++)
+            close_to("actor", i, got[i], y[i], 1e-4);
+    }
+
+    /* Drift statistics against a direct computation. */
+    assert_int_equal(mi->has_stats, 1);
+    size_t N = log.n;
+    for (size_t j = 0; j < D; j++) {
+        double m = 0;
+        for (size_t i = 0; i < N; i++)
+            m += log.states[i * D + j];
+        m /= (double)N;
+        close_to("mean", j, mi->state_mean[j], m, 1e-5);
+        for (size_t k = 0; k < D; k++) {
+            double m2 = 0, mk = 0;
+            for (size_t i = 0; i < N; i++)
+                mk += log.states[i * D + k];
+            mk /= (double)N;
+            for (size_t i = 0; i < N; i++)
+                m2 += (log.states[i * D + j] - m) * (log.states[i * D + k] - mk);
+            close_to("cov", j * D + k, mi->state_cov[j * D + k], m2 / (double)N, 1e-4);
+        }
+        /* Quantile edge i/bins by NumPy's default rule: position q (N - 1) between order
+         * statistics, linearly interpolated (Hyndman & Fan definition 7). */
+        float *col = malloc(N * sizeof *col);
+        for (size_t i = 0; i < N; i++)
+            col[i] = log.states[i * D + j];
+        for (size_t x = 0; x < N; x++) /* insertion sort: independent of the trainer's qsort */
+            for (size_t y2 = x; y2 > 0 && col[y2 - 1] > col[y2]; y2--) {
+                float tmp = col[y2];
+                col[y2] = col[y2 - 1];
+                col[y2 - 1] = tmp;
+            }
+        for (uint32_t q = 1; q < mi->bins; q++) {
+            double pos = (double)q / mi->bins * (double)(N - 1);
+            size_t lo = (size_t)pos;
+            double v = col[lo] + (pos - (double)lo) * (col[lo + 1 < N ? lo + 1 : lo] - col[lo]);
+            close_to("quantile", j * (mi->bins - 1) + q - 1,
+                     mi->quantile_edges[j * (mi->bins - 1) + q - 1], v, 1e-5);
+        }
+        free(col);
+    }
+    assert_true(mi->mahalanobis_p99 > 0 && mi->mahalanobis_p999 >= mi->mahalanobis_p99);
+
+    /* Reference set: logged states with the runtime's B; Cov(B) over the next states. */
+    assert_int_equal(mi->reference_count, c->ref_count < N ? c->ref_count : N);
+    float *rb = malloc(mi->reference_count * d * sizeof *rb);
+    assert_int_equal(veer_eval_backward(ws, mi->reference_count, mi->reference_states, rb), 0);
+    for (size_t i = 0; i < mi->reference_count * d; i++)
+        close_to("reference B", i, mi->reference_b[i], rb[i], 1e-4);
+    free(rb);
+    float *bn = malloc(N * d * sizeof *bn);
+    assert_int_equal(veer_eval_backward(ws, N, log.next_states, bn), 0);
+    for (size_t i = 0; i < d; i++)
+        for (size_t j = 0; j < d; j++) {
+            double e = 0;
+            for (size_t r = 0; r < N; r++)
+                e += (double)bn[r * d + i] * bn[r * d + j];
+            close_to("cov_b", i * d + j, mi->cov_b[i * d + j], e / (double)N, 1e-4);
+        }
+    free(bn);
+    assert_string_equal(mi->producer, "veer-train 0.1");
+    assert_non_null(strstr(mi->source_digest, "blake2b-256 states="));
+
+    free(s), free(a), free(z), free(got), free(want);
+    veer_workspace_destroy(ws);
+    veer_bundle_close(b);
+    veer__trainer_destroy(t);
+    veer__tlog_free(&log);
+}
+
+static void test_roundtrip_continuous(void **state)
+{
+    (void)state;
+    veer_train_config c;
+    cont_config(&c, "cont.veer");
+    roundtrip(&c);
+}
+
+static void test_roundtrip_table(void **state)
+{
+    (void)state;
+    veer_train_config c;
+    table_config(&c, "table.veer");
+    roundtrip(&c);
+}
+
+static unsigned char *slurp(const char *p, size_t *len)
+{
+    FILE *f = fopen(p, "rb");
+    assert_non_null(f);
+    fseek(f, 0, SEEK_END);
+    long n = ftell(f);
+    fseek(f, 0, SEEK_SET);
+    unsigned char *b = malloc((size_t)n);
+    assert_int_equal(fread(b, 1, (size_t)n, f), (size_t)n);
+    fclose(f);
+    *len = (size_t)n;
+    return b;
+}
+
+static void run_ok(veer_train_config *c)
+{
+    veer_error err;
+    if (veer__train_run(c, &err) != 0)
+        fail_msg("run: %s (%s)", err.message, err.field);
+}
+
+static void test_same_flags_same_bundle_and_resume(void **state)
+{
+    (void)state;
+    setenv("SOURCE_DATE_EPOCH", "1700000000", 1);
+    veer_train_config c;
+    char ck[512];
+    cont_config(&c, "r1.veer");
+    c.steps = 30;
+    run_ok(&c);
+    cont_config(&c, "r2.veer");
+    c.steps = 30;
+    run_ok(&c);
+    /* Stop at 13 steps, then resume to 30 from the checkpoint, under a third name. */
+    cont_config(&c, "r3.veer");
+    path_in(ck, sizeof ck, "r3.ckpt");
+    c.checkpoint_path = ck;
+    c.steps = 13;
+    c.checkpoint_every = 5;
+    run_ok(&c);
+    c.steps = 30;
+    run_ok(&c);
+    /* A checkpoint from other settings is refused, not silently continued. */
+    c.z_dim = 7;
+    veer_error err;
+    assert_int_equal(veer__train_run(&c, &err), VEER_ECONFIG);
+    assert_string_equal(err.field, "--checkpoint");
+
+    size_t l1, l2, l3;
+    char p[512];
+    path_in(p, sizeof p, "r1.veer");
+    unsigned char *b1 = slurp(p, &l1);
+    path_in(p, sizeof p, "r2.veer");
+    unsigned char *b2 = slurp(p, &l2);
+    path_in(p, sizeof p, "r3.veer");
+    unsigned char *b3 = slurp(p, &l3);
+    assert_int_equal(l1, l2);
+    assert_memory_equal(b1, b2, l1);
+    assert_int_equal(l1, l3);
+    assert_memory_equal(b1, b3, l1);
+    free(b1), free(b2), free(b3);
+
+    /* The curve has a header and one row per evaluation (every steps/50 = 1 here) + step 0. */
+    path_in(p, sizeof p, "r3.veer.curve.csv");
+    size_t cl;
+    unsigned char *cv = slurp(p, &cl);
+    size_t lines = 0;
+    for (size_t i = 0; i < cl; i++)
+        lines += cv[i] == '\n';
+    assert_int_equal(lines, 1 + 1 + 30);
+    assert_memory_equal(cv, "step,seconds,fb_loss", 20);
+    free(cv);
+}
+
+static int setup(void **state)
+{
+    (void)state;
+    snprintf(dir, sizeof dir, "/tmp/veer_test_export_XXXXXX");
+    if (mkdtemp(dir) == NULL)
+        return -1;
+    write_cont_log(300);
+    write_table_log(200);
+    return 0;
+}
+
+static int teardown(void **state)
+{
+    (void)state;
+    char cmd[512];
+    snprintf(cmd, sizeof cmd, "rm -rf '%s'", dir);
+    return system(cmd) == 0 ? 0 : -1;
+}
+
+int main(void)
+{
+    const struct CMUnitTest tests[] = {
+        cmocka_unit_test(test_roundtrip_continuous),
+        cmocka_unit_test(test_roundtrip_table),
+        cmocka_unit_test(test_same_flags_same_bundle_and_resume),
+    };
+    return cmocka_run_group_tests(tests, setup, teardown);
+}
