@@ -10,6 +10,7 @@ packages=(
   libopenblas-dev liblapacke-dev libuv1-dev libcmocka-dev libxxhash-dev libsodium-dev libcjson-dev libhttp-parser-dev
   python3-numpy python3-scipy python3-zmq python3-protobuf python3-pytest
   python3-prometheus-client tmux
+  clang libclang-rt-14-dev
 )
 
 missing=()
