@@ -30,10 +30,11 @@ void veer_arm_params_default(veer_arm_params *p)
         .parcel_mass = 0.5,
         .friction = {0.1, 0.1},
         .gravity = 9.81,
-        /* Link 1 cannot pass through straight down (the post under the shoulder), so its range is
-         * centred on straight up: π/2 ± 2.87. Link 2 cannot fold back onto link 1. */
-        .angle_min = {-1.30, -2.6},
-        .angle_max = {4.44, 2.6},
+        /* Link 1 cannot pass straight up (the cable carrier feeding the elbow motor is clamped
+         * above the shoulder), so its range is centred on hanging straight down: −π/2 ± 2.6.
+         * Link 2 cannot fold back onto link 1: ±2.6. */
+        .angle_min = {-M_PI / 2.0 - 2.6, -2.6},
+        .angle_max = {-M_PI / 2.0 + 2.6, 2.6},
         .stop_stiffness = 1000.0,
         .stop_damping = 5.0,
         .stop_depth = 0.01,
@@ -44,8 +45,8 @@ void veer_arm_params_default(veer_arm_params *p)
 static int check_positive(veer_error *err, const char *field, double v)
 {
     if (!isfinite(v) || v <= 0.0)
-        return veer__error_set(err, VEER_EINVAL, field, "%s must be a positive finite number, got %g",
-                               field, v);
+        return veer__error_set(err, VEER_EINVAL, field,
+                               "%s must be a positive finite number, got %g", field, v);
     return 0;
 }
 

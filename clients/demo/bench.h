@@ -5,8 +5,7 @@
  * lowest reach (0.65 m), so the arm needs no bench-collision model: the bins are crates standing
  * on the bench and a "bin" below is the drop point just above a crate's mouth. The keep-out zone
  * is the inbound chute under the shoulder where parcels arrive and a person may reach in; it
- * covers the poses the arm sinks to with no torque (link 1 resting on a shoulder stop beside the
- * post, link 2 hanging), so staying out of it takes effort.
+ * covers the pose the arm hangs in with no torque, so staying out of it takes effort.
  *
  * Every task, the log generator's coverage figures and the demo read these values; nothing else
  * states them.

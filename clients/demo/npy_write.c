@@ -17,8 +17,8 @@ int veer_demo_npy_write_f32(const char *path, const float *data, size_t rows, si
 {
     char dict[128];
     int n = cols ? snprintf(dict, sizeof dict,
-                            "{'descr': '<f4', 'fortran_order': False, 'shape': (%zu, %zu), }",
-                            rows, cols)
+                            "{'descr': '<f4', 'fortran_order': False, 'shape': (%zu, %zu), }", rows,
+                            cols)
                  : snprintf(dict, sizeof dict,
                             "{'descr': '<f4', 'fortran_order': False, 'shape': (%zu,), }", rows);
     /* magic(6) + version(2) + length(2) + dict + padding + '\n' is a multiple of 64. */
@@ -38,8 +38,7 @@ int veer_demo_npy_write_f32(const char *path, const float *data, size_t rows, si
         return veer__error_set(err, VEER_EIO, "path", "path too long: %s", path);
     FILE *f = fopen(tmp, "wb");
     if (f == NULL)
-        return veer__error_set(err, VEER_EIO, "path", "cannot create %s: %s", tmp,
-                               strerror(errno));
+        return veer__error_set(err, VEER_EIO, "path", "cannot create %s: %s", tmp, strerror(errno));
     size_t count = cols ? rows * cols : rows;
     int ok = fwrite(header, 1, 10 + (size_t)hlen, f) == 10 + (size_t)hlen &&
              (count == 0 || fwrite(data, sizeof(float), count, f) == count);
@@ -50,8 +49,7 @@ int veer_demo_npy_write_f32(const char *path, const float *data, size_t rows, si
     }
     if (!ok) {
         remove(tmp);
-        return veer__error_set(err, VEER_EIO, "path", "cannot write %s: %s", tmp,
-                               strerror(saved));
+        return veer__error_set(err, VEER_EIO, "path", "cannot write %s: %s", tmp, strerror(saved));
     }
     if (rename(tmp, path) != 0) {
         saved = errno;

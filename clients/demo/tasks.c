@@ -62,13 +62,14 @@ double veer_arm_task_reward(const veer_arm_task *task, const float obs[VEER_ARM_
         return d >= VEER_ARM_ZONE_MARGIN ? 1.0 : d / VEER_ARM_ZONE_MARGIN;
     }
     case VEER_ARM_TASK_SLOW_REACH:
-        return reach_term(task->bin, obs) - VEER_ARM_SLOW_PRICE * fmin(speed2(obs), VEER_ARM_SLOW_CAP);
+        return reach_term(task->bin, obs) -
+               VEER_ARM_SLOW_PRICE * fmin(speed2(obs), VEER_ARM_SLOW_CAP);
     }
     return 0.0;
 }
 
-int veer_arm_task_rewards(const veer_arm_task *task, const float *states, size_t n,
-                          float *rewards, veer_error *err)
+int veer_arm_task_rewards(const veer_arm_task *task, const float *states, size_t n, float *rewards,
+                          veer_error *err)
 {
     if (task == NULL)
         return veer__error_set(err, VEER_EINVAL, "task", "task must not be NULL");
@@ -82,8 +83,8 @@ int veer_arm_task_rewards(const veer_arm_task *task, const float *states, size_t
             if (!isfinite(states[i * VEER_ARM_OBS_DIM + j])) {
                 char field[48];
                 snprintf(field, sizeof field, "states[%zu][%d]", i, j);
-                return veer__error_set(err, VEER_ENONFINITE, field, "%s (%s) is not finite",
-                                       field, veer_arm_feature_names[j]);
+                return veer__error_set(err, VEER_ENONFINITE, field, "%s (%s) is not finite", field,
+                                       veer_arm_feature_names[j]);
             }
     for (size_t i = 0; i < n; i++)
         rewards[i] = (float)veer_arm_task_reward(task, states + i * VEER_ARM_OBS_DIM, NULL);

@@ -5,7 +5,7 @@
  * is part of the signature so a task could price torque, but none of the suite does: an FB task
  * vector is encoded from rewards of states (B reads states), so a reward that depends on the
  * action could not be expressed by the served model and the comparison with the planner would
- * not be fair. Rewards lie in [0, 1] except slow_reach_* (in [−1, 1]); an episode's return is
+ * not be fair. Rewards lie in [0, 1] except slow_reach_* (in [−0.4, 1]); an episode's return is
  * their undiscounted sum over the decisions (eval.h).
  *
  *   reach_<bin>       exp(−d / 0.10 m), d = gripper distance to the bin's drop point (bench.h).
@@ -16,7 +16,7 @@
  *   keep_still        exp(−(‖q̇‖ / 0.5 rad/s)²).
  *   avoid_chute       min(1, dist_to_keepout_zone / 0.05 m): 0 inside the zone, full reward
  *                     5 cm clear of it, so the reward has a slope a planner can follow.
- *   slow_reach_<bin>  exp(−d / 0.10 m) − 0.05 min(‖q̇‖², 20): the reach reward with a price on
+ *   slow_reach_<bin>  exp(−d / 0.10 m) − 0.02 min(‖q̇‖², 20): the reach reward with a price on
  *                     joint speed over the whole motion.
  * The scales are design choices for the demo (no source).
  */
@@ -45,12 +45,12 @@ typedef struct veer_arm_task {
 #define VEER_ARM_TASK_COUNT 7
 extern const veer_arm_task veer_arm_tasks[VEER_ARM_TASK_COUNT];
 
-#define VEER_ARM_REACH_SCALE 0.10  /* m */
-#define VEER_ARM_HEIGHT_SPAN 0.65  /* m, l1 + l2 of the default arm */
-#define VEER_ARM_STILL_SCALE 0.5   /* rad/s */
-#define VEER_ARM_ZONE_MARGIN 0.05  /* m */
-#define VEER_ARM_SLOW_PRICE 0.05   /* per (rad/s)² */
-#define VEER_ARM_SLOW_CAP 20.0     /* (rad/s)² */
+#define VEER_ARM_REACH_SCALE 0.10 /* m */
+#define VEER_ARM_HEIGHT_SPAN 0.65 /* m, l1 + l2 of the default arm */
+#define VEER_ARM_STILL_SCALE 0.5  /* rad/s */
+#define VEER_ARM_ZONE_MARGIN 0.05 /* m */
+#define VEER_ARM_SLOW_PRICE 0.02  /* per (rad/s)² */
+#define VEER_ARM_SLOW_CAP 20.0    /* (rad/s)² */
 
 /* The task called `name`, or NULL. */
 const veer_arm_task *veer_arm_task_find(const char *name);
@@ -64,8 +64,8 @@ double veer_arm_task_reward(const veer_arm_task *task, const float obs[VEER_ARM_
  * `rewards` (n floats, caller-owned): the reward samples a supervisor sends for encoding.
  * Returns 0, VEER_EINVAL (field "task", "states" or "rewards" when NULL) or VEER_ENONFINITE
  * (field "states[i][j]") when an observation holds NaN or infinity; nothing is written then. */
-int veer_arm_task_rewards(const veer_arm_task *task, const float *states, size_t n,
-                          float *rewards, veer_error *err);
+int veer_arm_task_rewards(const veer_arm_task *task, const float *states, size_t n, float *rewards,
+                          veer_error *err);
 
 /* Whether the task has a goal state (the reach kinds). */
 int veer_arm_task_has_goal(const veer_arm_task *task);

@@ -37,21 +37,21 @@ void arm_ctypes_default_params(double *v)
 {
     veer_arm_params p;
     veer_arm_params_default(&p);
-    double out[ARM_CTYPES_NPARAM] = {
-        p.link_mass[0],     p.link_mass[1],    p.link_length[0],  p.link_length[1],
-        p.com_distance[0],  p.com_distance[1], p.link_inertia[0], p.link_inertia[1],
-        p.parcel_mass,      p.friction[0],     p.friction[1],     p.gravity,
-        p.angle_min[0],     p.angle_min[1],    p.angle_max[0],    p.angle_max[1],
-        p.stop_stiffness,   p.stop_damping,    p.stop_depth,      p.torque_max[0],
-        p.torque_max[1]};
+    double out[ARM_CTYPES_NPARAM] = {p.link_mass[0],    p.link_mass[1],    p.link_length[0],
+                                     p.link_length[1],  p.com_distance[0], p.com_distance[1],
+                                     p.link_inertia[0], p.link_inertia[1], p.parcel_mass,
+                                     p.friction[0],     p.friction[1],     p.gravity,
+                                     p.angle_min[0],    p.angle_min[1],    p.angle_max[0],
+                                     p.angle_max[1],    p.stop_stiffness,  p.stop_damping,
+                                     p.stop_depth,      p.torque_max[0],   p.torque_max[1]};
     memcpy(v, out, sizeof out);
 }
 
 /* Runs `steps` steps of `dt` from state (q1, q2, q̇1, q̇2) with a held torque. Writes the final
  * state and, when `energy` is not NULL, the energy before the first step and after each step
  * (steps + 1 values). Returns the first error code, 0 on success. */
-int arm_ctypes_simulate(const double *params, const double *state0, const double *torque,
-                        int steps, double dt, double *state_out, double *energy)
+int arm_ctypes_simulate(const double *params, const double *state0, const double *torque, int steps,
+                        double dt, double *state_out, double *energy)
 {
     veer_arm_params p;
     veer_arm arm;
