@@ -125,7 +125,8 @@ void veer_workspace_destroy(veer_workspace *ws);
 
 /* Acts for one state: writes action_dim values to `action`, the value Q(s, a, z) to *value
  * (may be NULL) and flags to *flags (may be NULL).
- * Returns VEER_ENONFINITE when `state` or `z` holds NaN or infinity (nothing is written). When
+ * Returns VEER_ENONFINITE when `state` or `z` holds NaN or infinity, and VEER_EINVAL when a
+ * state feature read through an embedding layer is not a valid index (nothing is written). When
  * the network itself yields a non-finite action or value, the result is the fallback action,
  * value 0, flags VEER_ACT_FALLBACK | VEER_ACT_NONFINITE, and the return is 0: every action that
  * leaves this function is finite and within the bounds.
