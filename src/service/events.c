@@ -125,3 +125,15 @@ void veer__events_drift(veer__events *e, const char *scope, const char *statisti
     ev.drift = &s;
     publish(e, "veer.drift", &ev);
 }
+
+void veer__events_deadline_burst(veer__events *e, const char *channel, uint32_t misses, double window_s)
+{
+    Veer__Wire__DeadlineBurst s = VEER__WIRE__DEADLINE_BURST__INIT;
+    s.channel = (char *)channel;
+    s.misses = misses;
+    s.window_s = window_s;
+    Veer__Wire__Event ev = VEER__WIRE__EVENT__INIT;
+    ev.body_case = VEER__WIRE__EVENT__BODY_DEADLINE_BURST;
+    ev.deadline_burst = &s;
+    publish(e, "veer.deadline", &ev);
+}

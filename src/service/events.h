@@ -1,5 +1,5 @@
 /* The events socket: a ZeroMQ PUB socket on which veerd announces what changed, as two frames,
- * a topic ("veer.switch", "veer.task", "veer.drift", "veer.model") for prefix subscriptions and one serialized
+ * a topic ("veer.switch", "veer.task", "veer.drift", "veer.deadline", "veer.model") for prefix subscriptions and one serialized
  * veer.wire.Event. Publishing never blocks: a subscriber that falls behind loses events (their
  * seq numbers show the gap) rather than slowing the service. Loop thread only. */
 #ifndef VEER_SERVICE_EVENTS_H
@@ -22,6 +22,9 @@ void veer__events_task_stored(veer__events *e, const char *name, const uint8_t d
 void veer__events_task_dropped(veer__events *e, const char *name);
 void veer__events_drift(veer__events *e, const char *scope, const char *statistic, const char *feature,
                         double value, uint32_t level);
+/* `misses` deadline misses within `window_s` seconds; `channel` "" for the whole service. Topic
+ * "veer.deadline". */
+void veer__events_deadline_burst(veer__events *e, const char *channel, uint32_t misses, double window_s);
 void veer__events_model_loaded(veer__events *e, const char *version, const uint8_t digest[32]);
 
 #endif
