@@ -1,0 +1,112 @@
+/* The operators' side of veerd (see ops.h). One 100 ms timer samples the deadline-miss counter
+ * for the burst detector and, every tenth time, moves the latency intervals into the metrics'
+ * one-second slots. The HTTP handler answers three paths; everything else is 404. */
+#include "service/ops.h"
+
+#include <stdio.h>
+#include <string.h>
+
+#include "base/base.h"
+#include "service/burst.h"
+#include "service/http.h"
+#include "service/log.h"
+#include "service/metrics.h"
+
+#define OPS_TICK_MS 100
+#define METRICS_EVERY 10 /* ticks: one second */
+
+struct veer__ops {
+    veer__ops_config cfg;
+    uv_timer_t timer;
+    veer__http *http;
+    veer__metrics *metrics;
+    veer__burst burst;
+    uint32_t ticks;
+    veer__metrics_extra extra;
+};
+
+static void on_tick(uv_timer_t *t)
+{
+    veer__ops *o = t->data;
+    veer__act_counters c;
+    veer__act_counters_get(o->cfg.act, &c);
+    uint32_t misses = 0;
+    if (veer__burst_update(&o->burst, veer__now_ns(), c.deadline_misses, &misses)) {
+        o->extra.deadline_bursts++;
+        double window_s = (double)o->burst.window_ns * 1e-9;
+        if (o->cfg.store->events != NULL)
+            veer__events_deadline_burst(o->cfg.store->events, "", misses, window_s);
+        veer__log_warn("deadline: %u misses within %.1f s (controllers got fallback actions)", misses, window_s);
+    }
+    if (++o->ticks % METRICS_EVERY == 0)
+        veer__metrics_tick(o->metrics);
+}
+
+static void handle(void *ctx, const char *path, veer__http_response *resp)
+{
+    veer__ops *o = ctx;
+    o->extra.http_requests++;
+    if (strcmp(path, "/metrics") == 0) {
+        veer__metrics_render(o->metrics, &o->extra, resp);
+    } else if (strcmp(path, "/healthz") == 0) {
+        veer__http_body_printf(resp, "alive\n");
+    } else if (strcmp(path, "/readyz") == 0) {
+        char reason[256];
+        if (!veer__metrics_ready(o->metrics, reason, sizeof reason))
+            resp->status = 503;
+        veer__http_body_printf(resp, "%s: %s\n", resp->status == 200 ? "ready" : "not ready", reason);
+    } else {
+        resp->status = 404;
+        veer__http_body_printf(resp, "404 Not Found: veerd serves /metrics, /healthz and /readyz\n");
+    }
+}
+
+int veer__ops_start(const veer__ops_config *cfg, veer__ops **out, veer_error *err)
+{
+    veer__ops *o = veer__calloc(1, sizeof *o);
+    if (o == NULL)
+        return veer__error_set(err, VEER_ENOMEM, "--http", NULL);
+    o->cfg = *cfg;
+    veer__burst_init(&o->burst, cfg->burst_misses ? cfg->burst_misses : 10,
+                     (uint64_t)(cfg->burst_window_ms ? cfg->burst_window_ms : 1000) * 1000000u);
+    veer__metrics_config mc = {
+        .store = cfg->store, .act = cfg->act, .version = cfg->version, .monitors_off = cfg->monitors_off};
+    if (veer__metrics_create(&mc, &o->metrics) != 0) {
+        veer__free(o);
+        return veer__error_set(err, VEER_ENOMEM, "--http", "no memory for the metrics' histograms");
+    }
+    if (cfg->http_address != NULL && cfg->http_address[0] != '\0') {
+        veer__http_config hc = {.loop = cfg->loop, .address = cfg->http_address, .handler = handle, .ctx = o};
+        int rc = veer__http_start(&hc, &o->http, err);
+        if (rc < 0) {
+            veer__metrics_destroy(o->metrics);
+            veer__free(o);
+            return rc;
+        }
+    }
+    uv_timer_init(cfg->loop, &o->timer);
+    o->timer.data = o;
+    uv_timer_start(&o->timer, on_tick, OPS_TICK_MS, OPS_TICK_MS);
+    *out = o;
+    return 0;
+}
+
+int veer__ops_http_port(const veer__ops *o) { return o != NULL && o->http != NULL ? veer__http_port(o->http) : -1; }
+
+static void on_timer_closed(uv_handle_t *handle)
+{
+    veer__ops *o = handle->data;
+    veer__free(o);
+}
+
+void veer__ops_stop(veer__ops *o)
+{
+    if (o == NULL)
+        return;
+    veer__http_stop(o->http, NULL, NULL);
+    o->http = NULL;
+    veer__metrics_destroy(o->metrics);
+    o->metrics = NULL;
+    uv_timer_stop(&o->timer);
+    uv_close((uv_handle_t *)&o->timer, on_timer_closed);
+}
