@@ -44,7 +44,8 @@ static const opt_desc OPTIONS[] = {
     {"--events", "VEER_EVENTS", OPT_STR, OFF(events_endpoint), "tcp://127.0.0.1:7712", 0, 0, 0,
      "Events endpoint (PUB): switches, stored and dropped tasks, model loads."},
     {"--http", "VEER_HTTP", OPT_STR, OFF(http_endpoint), NULL, 0, 0, 0,
-     "HOST:PORT for the HTTP metrics and health endpoint (reserved; not served yet)."},
+     "HOST:PORT (or [V6]:PORT) for the HTTP endpoint: GET /metrics (Prometheus text format),\n"
+     "/healthz and /readyz. Off when empty. Read-only, but bind it where only operators reach."},
     {"--default-deadline-us", "VEER_DEFAULT_DEADLINE_US", OPT_U32, OFF(default_deadline_us),
      "1000", 10, 10000000, 0,
      "Deadline in microseconds for act requests that do not carry one."},
@@ -69,6 +70,9 @@ static const opt_desc OPTIONS[] = {
      "the admin socket; needs --allowed-keys."},
     {"--allowed-keys", "VEER_ALLOWED_KEYS", OPT_STR, OFF(allowed_keys_path), NULL, 0, 0, 0,
      "File of client public keys (Z85, one per line, '#' comments) allowed to connect."},
+    {"--monitors", "VEER_MONITORS", OPT_BOOL, OFF(monitors), "1", 0, 1, 0,
+     "Drift monitor and per-stage latency histograms on the act path (0 turns them off, for\n"
+     "measuring their cost; no coverage flag, no drift or latency metrics then)."},
     {"--act-auth", "VEER_ACT_AUTH", OPT_BOOL, OFF(act_auth), "0", 0, 1, 0,
      "Require CURVE authentication on the act socket too (0 or 1; needs --server-key)."},
 };

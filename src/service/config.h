@@ -17,7 +17,7 @@ typedef struct veer__config {
     char events_endpoint[VEER__CONFIG_STR_MAX];
     char bundle_path[VEER__CONFIG_STR_MAX];
     char state_dir[VEER__CONFIG_STR_MAX];
-    char http_endpoint[VEER__CONFIG_STR_MAX]; /* "" when off; served by the metrics work */
+    char http_endpoint[VEER__CONFIG_STR_MAX]; /* "" when off; HOST:PORT (service/http.h) */
     char server_key_path[VEER__CONFIG_STR_MAX];
     char allowed_keys_path[VEER__CONFIG_STR_MAX];
     uint32_t act_auth;             /* 1: controllers must authenticate with CURVE too */
@@ -28,6 +28,7 @@ typedef struct veer__config {
     uint32_t max_tasks;
     uint32_t max_channels;
     uint32_t journal_compact_bytes;
+    uint32_t monitors;             /* 1: drift monitor and stage latency recorders on */
 } veer__config;
 
 /* Results of veer__config_parse besides 0 and VEER_ECONFIG. */

@@ -22,8 +22,10 @@
 #include "service/auth.h"
 #include "service/config.h"
 #include "service/events.h"
+#include "service/http.h"
 #include "service/journal.h"
 #include "service/log.h"
+#include "service/ops.h"
 #include "service/store.h"
 #include "veer/drift.h"
 
@@ -44,6 +46,7 @@ typedef struct veerd {
     veer__act *act;
     veer__admin *admin;
     veer__zap *zap;
+    veer__ops *ops; /* HTTP endpoint, metrics, deadline-burst events */
     int stopping;
     veer_drift_report *drift_report; /* NULL without training statistics */
     veer_drift_level psi_level, exceed_level;
@@ -96,6 +99,8 @@ static void on_signal(uv_signal_t *s, int signum)
     veer__log_info("%s: stopping: answering requests in flight", signum == SIGTERM ? "SIGTERM" : "SIGINT");
     uv_signal_stop(&d->sigterm);
     uv_signal_stop(&d->sigint);
+    veer__ops_stop(d->ops); /* it reads the act thread's counters: stop it first */
+    d->ops = NULL;
     veer__act_stop(d->act); /* returns once queued acts are answered */
     d->act = NULL;
     veer__admin_stop(d->admin, close_handles, d);
@@ -138,6 +143,9 @@ int main(int argc, char **argv)
         return 0;
     }
     if (rc < 0)
+        return config_exit(&err);
+    struct sockaddr_storage http_addr;
+    if (d.cfg.http_endpoint[0] != '\0' && veer__http_parse_address(d.cfg.http_endpoint, &http_addr, &err) < 0)
         return config_exit(&err);
     signal(SIGPIPE, SIG_IGN);
 
@@ -238,7 +246,8 @@ int main(int argc, char **argv)
                              .channels = channels,
                              .default_deadline_us = d.cfg.default_deadline_us,
                              .max_message_bytes = d.cfg.act_max_message_bytes,
-                             .server_secret_key = auth && d.cfg.act_auth ? secret : NULL};
+                             .server_secret_key = auth && d.cfg.act_auth ? secret : NULL,
+                             .monitors_off = !d.cfg.monitors};
     if (veer__act_start(&acfg, &d.act, &err) < 0) {
         veer__log_error("%s", err.message);
         goto fail_events;
@@ -258,6 +267,21 @@ int main(int argc, char **argv)
         veer__log_error("%s", err.message);
         goto fail_act;
     }
+    veer__ops_config ocfg = {.loop = d.loop,
+                             .http_address = d.cfg.http_endpoint,
+                             .store = &d.store,
+                             .act = d.act,
+                             .version = VEER_VERSION,
+                             .monitors_off = !d.cfg.monitors};
+    if (veer__ops_start(&ocfg, &d.ops, &err) < 0) {
+        veer__log_error("%s", err.message);
+        veer__admin_stop(d.admin, NULL, NULL);
+        uv_run(d.loop, UV_RUN_NOWAIT); /* lets the admin socket's poll handle close */
+        veer__admin_close(d.admin);
+        goto fail_act;
+    }
+    if (d.cfg.http_endpoint[0] != '\0')
+        veer__log_info("http: serving /metrics, /healthz and /readyz on port %d", veer__ops_http_port(d.ops));
     uv_signal_init(d.loop, &d.sigterm);
     uv_signal_init(d.loop, &d.sigint);
     d.sigterm.data = d.sigint.data = &d;
@@ -266,8 +290,6 @@ int main(int argc, char **argv)
     uv_timer_init(d.loop, &d.tick);
     d.tick.data = &d;
     uv_timer_start(&d.tick, on_tick, TICK_MS, TICK_MS);
-    if (d.cfg.http_endpoint[0] != '\0')
-        veer__log_warn("--http %s: the HTTP endpoint is not served yet", d.cfg.http_endpoint);
     veer__events_model_loaded(events, info->model_version, info->digest);
     veer__log_info("ready: act %s, admin %s, events %s (pid %ld)", d.cfg.act_endpoint, d.cfg.admin_endpoint,
                    d.cfg.events_endpoint, (long)getpid());
