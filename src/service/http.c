@@ -222,6 +222,7 @@ static const char *reason(int status)
     case 431: return "Request Header Fields Too Large";
     case 500: return "Internal Server Error";
     case 503: return "Service Unavailable";
+    case 505: return "HTTP Version Not Supported";
     default: return "Status";
     }
 }
@@ -315,6 +316,10 @@ static int on_message_complete(http_parser *p)
     veer__http *h = c->server;
     c->in_request = 0;
     uv_timer_start(&c->timer, on_timer, h->cfg.idle_timeout_ms, 0);
+    if (p->http_major != 1) {
+        conn_send_error(c, 505, "this endpoint speaks HTTP/1.0 and HTTP/1.1");
+        return 1;
+    }
     int keep = http_should_keep_alive(p);
     int method = p->method;
     if (method != HTTP_GET && method != HTTP_HEAD) {

@@ -5,7 +5,8 @@
  * request's method and path to a handler that fills in a response.
  *
  * Limits, because the port is reachable by whatever can reach the host:
- *   - GET and HEAD only (others: 405 with Allow); malformed requests: 400 and close;
+ *   - GET and HEAD only (others: 405 with Allow); malformed requests: 400 and close; HTTP
+ *     versions other than 1.x: 505 and close;
  *   - request line and headers at most `max_header_bytes` (431 and close); bodies at most
  *     `max_body_bytes` (413 and close);
  *   - a request must arrive whole within `request_timeout_ms` of its first byte (408 and close),
