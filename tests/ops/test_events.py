@@ -5,30 +5,11 @@ act below misses it."""
 import time
 
 import numpy as np
-import zmq
 
 import harness
-from harness import wire
 from metrics_text import scrape, value
-
-
-def subscriber(eps, topic=b"veer."):
-    s = zmq.Context.instance().socket(zmq.SUB)
-    s.setsockopt(zmq.LINGER, 0)
-    s.setsockopt(zmq.SUBSCRIBE, topic)
-    s.connect(eps["events"])
-    time.sleep(0.3)  # PUB drops what is published before the subscription arrives
-    return s
-
-
-def receive(sock, n, timeout=5.0):
-    out = []
-    end = time.monotonic() + timeout
-    while len(out) < n and time.monotonic() < end:
-        if sock.poll(100):
-            topic, body = sock.recv_multipart()
-            out.append((topic.decode(), wire.Event.FromString(body)))
-    return out
+from test_veerd_events import events as receive  # tests/service, on the path by conftest.py
+from test_veerd_events import subscriber
 
 
 def test_scripted_sequence_with_a_deadline_burst(continuous_bundle, start):
