@@ -39,11 +39,12 @@ static int call(veer_client *c, Veer__Wire__Request *req, Veer__Wire__Reply__Bod
         return rc;
     if (r->body_case != want &&
         !(want != VEER__WIRE__REPLY__BODY_DONE && r->body_case == VEER__WIRE__REPLY__BODY_DONE)) {
+        int got = (int)r->body_case; /* read before the reply is freed */
         veer__wire__reply__free_unpacked(r, &veer__client_heap);
         return veer__error_set(err, VEER_EBADMSG, "reply",
                                "veerd answered with message %d where %d was expected; are the "
                                "client and veerd the same version?",
-                               (int)r->body_case, (int)want);
+                               got, (int)want);
     }
     c->last = r;
     return 0;
