@@ -1,0 +1,536 @@
+/* bench_veerd: act round trips through a real veerd against the floor of a bare ZeroMQ echo of
+ * the same message sizes plus in-process inference, all measured in the same run.
+ *
+ * Per bundle and transport (tcp on 127.0.0.1, ipc):
+ *   1. in-process inference: veer_act on this thread (p50, p99, p99.9);
+ *   2. closed loop: one DEALER, request -> reply, against the echo and against veerd;
+ *   3. paced: 4 controllers at 1 kHz, deadline 1 ms, against the echo and against veerd.
+ *      Latency counts from the scheduled send time, not the actual one, so a late loop cannot
+ *      hide a slow reply (coordinated omission); a reply later than 1 ms after its schedule, or
+ *      one veerd flags with VEER_ACT_DEADLINE, is a miss. The loop's own lateness is printed;
+ *   4. throughput: 4 DEALERs, 32 requests in flight each, replies per second.
+ * Then the issue's targets as ratios to the floor of this run:
+ *   p50 <= echo p50 + 1.2 x inference p50;  p99.9 <= 1.5 x echo p99.9 + inference p99.9;
+ *   paced miss rate <= 1.5 x the echo's miss rate at the same pacing.
+ * No assertion: it prints, and exits 0. Usage:
+ *   bench_veerd VEERD BUNDLE [BUNDLE...] [--seconds S]   (S: paced duration, default 30) */
+#include <errno.h>
+#include <inttypes.h>
+#include <pthread.h>
+#include <signal.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <sys/wait.h>
+#include <time.h>
+#include <unistd.h>
+#include <zmq.h>
+
+#include "base/base.h"
+#include "veer/histogram.h"
+#include "veer/runtime.h"
+#include "veer_wire.pb-c.h"
+
+#define CONTROLLERS 4
+#define CLOSED_N 20000
+#define WINDOW 32
+#define DEADLINE_NS 1000000ull
+
+static double seconds_paced = 30.0;
+
+typedef struct target {
+    const char *act;           /* endpoint */
+    size_t req_len;            /* bytes of one act request */
+    uint8_t req[4096];
+} target;
+
+/* ---- the echo floor: a ROUTER that answers every request with a reply-sized frame ---------- */
+
+typedef struct echo {
+    void *ctx;
+    char endpoint[256];
+    size_t reply_len;
+    volatile int stop;
+    pthread_t th;
+} echo;
+
+static void *echo_main(void *arg)
+{
+    echo *e = arg;
+    void *s = zmq_socket(e->ctx, ZMQ_ROUTER);
+    int timeout = 100, linger = 0;
+    zmq_setsockopt(s, ZMQ_RCVTIMEO, &timeout, sizeof timeout);
+    zmq_setsockopt(s, ZMQ_LINGER, &linger, sizeof linger);
+    if (zmq_bind(s, e->endpoint) != 0) {
+        fprintf(stderr, "echo: bind %s: %s\n", e->endpoint, zmq_strerror(errno));
+        exit(1);
+    }
+    uint8_t reply[4096] = {0};
+    zmq_msg_t id, body;
+    zmq_msg_init(&id);
+    zmq_msg_init(&body);
+    while (!e->stop) {
+        if (zmq_msg_recv(&id, s, 0) < 0)
+            continue;
+        zmq_msg_recv(&body, s, 0);
+        zmq_msg_send(&id, s, ZMQ_SNDMORE);
+        zmq_send(s, reply, e->reply_len, 0);
+    }
+    zmq_msg_close(&id);
+    zmq_msg_close(&body);
+    zmq_close(s);
+    return NULL;
+}
+
+/* ---- helpers -------------------------------------------------------------------------------- */
+
+static void *dealer(void *ctx, const char *endpoint)
+{
+    void *s = zmq_socket(ctx, ZMQ_DEALER);
+    int linger = 0;
+    zmq_setsockopt(s, ZMQ_LINGER, &linger, sizeof linger);
+    zmq_connect(s, endpoint);
+    return s;
+}
+
+static size_t pack_request(Veer__Wire__Request *q, uint8_t *buf) { return veer__wire__request__pack(q, buf); }
+
+/* Sends `q` on `s` and returns the unpacked Reply (heap), or NULL after 10 s. */
+static Veer__Wire__Reply *call(void *s, Veer__Wire__Request *q)
+{
+    uint8_t buf[1 << 16];
+    uint8_t *p = buf;
+    size_t n = veer__wire__request__get_packed_size(q);
+    if (n > sizeof buf)
+        p = malloc(n);
+    pack_request(q, p);
+    zmq_send(s, p, n, 0);
+    if (p != buf)
+        free(p);
+    zmq_pollitem_t it = {s, 0, ZMQ_POLLIN, 0};
+    if (zmq_poll(&it, 1, 10000) <= 0)
+        return NULL;
+    zmq_msg_t m;
+    zmq_msg_init(&m);
+    zmq_msg_recv(&m, s, 0);
+    Veer__Wire__Reply *r = veer__wire__reply__unpack(NULL, zmq_msg_size(&m), zmq_msg_data(&m));
+    zmq_msg_close(&m);
+    return r;
+}
+
+static void print_summary(const char *what, const veer_hist *h)
+{
+    veer_hist_summary s;
+    veer_hist_summarize(h, &s);
+    printf("  %-34s n=%-7" PRIu64 " p50 %7.1f us  p99 %7.1f us  p99.9 %7.1f us  max %8.1f us\n", what, s.count,
+           s.p50 / 1e3, s.p99 / 1e3, s.p999 / 1e3, s.max / 1e3);
+}
+
+static uint64_t pct(const veer_hist *h, double p)
+{
+    uint64_t v = 0;
+    veer_hist_percentile(h, p, &v);
+    return v;
+}
+
+/* ---- closed loop ------------------------------------------------------------------------------ */
+
+static void closed_loop(void *ctx, const target *t, veer_hist *h)
+{
+    void *s = dealer(ctx, t->act);
+    uint8_t buf[4096];
+    for (int i = 0; i < CLOSED_N + 500; i++) {
+        uint64_t t0 = veer__now_ns();
+        zmq_send(s, t->req, t->req_len, 0);
+        zmq_recv(s, buf, sizeof buf, 0);
+        if (i >= 500) /* the first ones warm up connections and caches */
+            veer_hist_record(h, veer__now_ns() - t0);
+    }
+    zmq_close(s);
+}
+
+/* ---- paced controllers ------------------------------------------------------------------------ */
+
+typedef struct paced {
+    void *ctx;
+    const target *t;
+    int check_flags; /* veerd: read the reply's flags */
+    veer_hist *latency, *lateness;
+    uint64_t sent, misses, flagged, lost;
+    pthread_t th;
+} paced;
+
+static void sleep_until(uint64_t t_ns)
+{
+    /* Sleep to 50 us before, then spin: a 1 kHz loop cannot trust the scheduler's wake-up. */
+    for (;;) {
+        uint64_t now = veer__now_ns();
+        if (now >= t_ns)
+            return;
+        if (t_ns - now > 60000) {
+            struct timespec ts = {0, (long)(t_ns - now - 50000)};
+            nanosleep(&ts, NULL);
+        }
+    }
+}
+
+static void *paced_main(void *arg)
+{
+    paced *p = arg;
+    void *s = dealer(p->ctx, p->t->act);
+    uint8_t buf[4096];
+    /* Warm up the connection before the clock starts. */
+    zmq_send(s, p->t->req, p->t->req_len, 0);
+    zmq_recv(s, buf, sizeof buf, 0);
+    uint64_t n = (uint64_t)(seconds_paced * 1000.0);
+    uint64_t start = veer__now_ns() + 10000000;
+    zmq_pollitem_t it = {s, 0, ZMQ_POLLIN, 0};
+    for (uint64_t k = 0; k < n; k++) {
+        uint64_t scheduled = start + k * 1000000ull;
+        sleep_until(scheduled);
+        uint64_t t_send = veer__now_ns();
+        veer_hist_record(p->lateness, t_send - scheduled + 1);
+        zmq_send(s, p->t->req, p->t->req_len, 0);
+        p->sent++;
+        /* Wait at most until the next tick plus a grace period, so one lost reply cannot stall
+         * the loop; a reply that comes later is read and counted then. */
+        int got = 0;
+        while (!got) {
+            long left_ms = (long)((scheduled + 50000000ull - veer__now_ns()) / 1000000ull);
+            if (zmq_poll(&it, 1, left_ms > 0 ? left_ms : 0) <= 0)
+                break;
+            int len = zmq_recv(s, buf, sizeof buf, 0);
+            uint64_t lat = veer__now_ns() - scheduled;
+            veer_hist_record(p->latency, lat);
+            int miss = lat > DEADLINE_NS;
+            if (p->check_flags && len > 0) {
+                Veer__Wire__Reply *r = veer__wire__reply__unpack(NULL, (size_t)len, buf);
+                if (r != NULL && r->body_case == VEER__WIRE__REPLY__BODY_ACT &&
+                    (r->act->flags & VEER_ACT_DEADLINE)) {
+                    miss = 1;
+                    p->flagged++;
+                }
+                if (r != NULL)
+                    veer__wire__reply__free_unpacked(r, NULL);
+            }
+            p->misses += miss;
+            got = 1;
+        }
+        if (!got) {
+            p->lost++;
+            p->misses++;
+        }
+    }
+    zmq_close(s);
+    return NULL;
+}
+
+typedef struct paced_result {
+    veer_hist *latency, *lateness;
+    uint64_t sent, misses, flagged, lost;
+} paced_result;
+
+static void run_paced(void *ctx, const target *t, int check_flags, paced_result *out)
+{
+    paced p[CONTROLLERS];
+    veer_hist_create(&out->latency);
+    veer_hist_create(&out->lateness);
+    out->sent = out->misses = out->flagged = out->lost = 0;
+    for (int i = 0; i < CONTROLLERS; i++) {
+        memset(&p[i], 0, sizeof p[i]);
+        p[i].ctx = ctx;
+        p[i].t = t;
+        p[i].check_flags = check_flags;
+        veer_hist_create(&p[i].latency);
+        veer_hist_create(&p[i].lateness);
+        pthread_create(&p[i].th, NULL, paced_main, &p[i]);
+    }
+    for (int i = 0; i < CONTROLLERS; i++) {
+        pthread_join(p[i].th, NULL);
+        veer_hist_merge(out->latency, p[i].latency);
+        veer_hist_merge(out->lateness, p[i].lateness);
+        out->sent += p[i].sent;
+        out->misses += p[i].misses;
+        out->flagged += p[i].flagged;
+        out->lost += p[i].lost;
+        veer_hist_destroy(p[i].latency);
+        veer_hist_destroy(p[i].lateness);
+    }
+}
+
+/* ---- throughput ------------------------------------------------------------------------------- */
+
+typedef struct pump {
+    void *ctx;
+    const target *t;
+    uint64_t replies;
+    pthread_t th;
+} pump;
+
+static void *pump_main(void *arg)
+{
+    pump *p = arg;
+    void *s = dealer(p->ctx, p->t->act);
+    uint8_t buf[4096];
+    for (int i = 0; i < WINDOW; i++)
+        zmq_send(s, p->t->req, p->t->req_len, 0);
+    uint64_t end = veer__now_ns() + 2000000000ull;
+    while (veer__now_ns() < end) {
+        if (zmq_recv(s, buf, sizeof buf, 0) < 0)
+            break;
+        p->replies++;
+        zmq_send(s, p->t->req, p->t->req_len, 0);
+    }
+    /* Drain what is in flight so the next phase starts clean. */
+    int timeout = 2000;
+    zmq_setsockopt(s, ZMQ_RCVTIMEO, &timeout, sizeof timeout);
+    for (int i = 0; i < WINDOW; i++)
+        zmq_recv(s, buf, sizeof buf, 0);
+    zmq_close(s);
+    return NULL;
+}
+
+static double throughput(void *ctx, const target *t)
+{
+    pump p[CONTROLLERS];
+    for (int i = 0; i < CONTROLLERS; i++) {
+        p[i] = (pump){.ctx = ctx, .t = t};
+        pthread_create(&p[i].th, NULL, pump_main, &p[i]);
+    }
+    uint64_t total = 0;
+    for (int i = 0; i < CONTROLLERS; i++) {
+        pthread_join(p[i].th, NULL);
+        total += p[i].replies;
+    }
+    return (double)total / 2.0;
+}
+
+/* ---- veerd -------------------------------------------------------------------------------------- */
+
+static pid_t start_veerd(const char *veerd, const char *bundle, const char *dir, const char *act,
+                         const char *admin, const char *events)
+{
+    pid_t pid = fork();
+    if (pid == 0) {
+        char state[512], log[512];
+        snprintf(state, sizeof state, "%s/state", dir);
+        snprintf(log, sizeof log, "%s/veerd.log", dir);
+        if (freopen(log, "w", stderr) == NULL)
+            _exit(1);
+        execl(veerd, veerd, "--bundle", bundle, "--state-dir", state, "--act", act, "--admin", admin, "--events",
+              events, (char *)NULL);
+        _exit(127);
+    }
+    return pid;
+}
+
+static int bench_one(const char *veerd, const char *bundle_path, const char *transport)
+{
+    veer_error err;
+    veer_bundle *b = NULL;
+    if (veer_bundle_open(bundle_path, &b, &err) < 0) {
+        fprintf(stderr, "%s: %s\n", bundle_path, err.message);
+        return 1;
+    }
+    const veer_model_info *info = veer_bundle_info(b);
+    printf("\n== %s (state %u, z %u, %s) over %s ==\n", info->model_version, info->state_dim, info->z_dim,
+           info->action_kind == VEER_ACTION_CONTINUOUS ? "continuous" : "discrete", transport);
+
+    /* 1. In-process inference with a task made from the reference set. */
+    uint32_t n_ref = info->reference_count, sd = info->state_dim;
+    float *rewards = calloc(n_ref, sizeof(float));
+    for (uint32_t i = 0; i < n_ref; i++)
+        rewards[i] = (float)((i * 2654435761u) % 1000) / 500.0f - 1.0f;
+    veer_task_spec spec;
+    veer_task_spec_init(&spec, VEER_TASK_SAMPLES);
+    spec.count = n_ref;
+    spec.states = info->reference_states;
+    spec.values = rewards;
+    float *z = calloc(info->z_dim, sizeof(float));
+    if (veer_task_encode(b, &spec, z, NULL, &err) < 0) {
+        fprintf(stderr, "encode: %s\n", err.message);
+        return 1;
+    }
+    veer_workspace *ws;
+    veer_workspace_create(b, 1, &ws, NULL);
+    float action[64];
+    veer_hist *inference;
+    veer_hist_create(&inference);
+    for (int i = 0; i < CLOSED_N + 500; i++) {
+        const float *s = info->reference_states + (size_t)(i % n_ref) * sd;
+        uint64_t t0 = veer__now_ns();
+        veer_act(ws, s, z, action, NULL, NULL);
+        if (i >= 500)
+            veer_hist_record(inference, veer__now_ns() - t0);
+    }
+
+    /* 2. Endpoints, veerd, the task and the echo. */
+    char dir[] = "/tmp/veer-bench-XXXXXX";
+    if (mkdtemp(dir) == NULL)
+        return 1;
+    char act[256], admin[256], events[256], echo_ep[256];
+    if (strcmp(transport, "tcp") == 0) {
+        int base = 20000 + (int)(getpid() % 20000);
+        snprintf(act, sizeof act, "tcp://127.0.0.1:%d", base);
+        snprintf(admin, sizeof admin, "tcp://127.0.0.1:%d", base + 1);
+        snprintf(events, sizeof events, "tcp://127.0.0.1:%d", base + 2);
+        snprintf(echo_ep, sizeof echo_ep, "tcp://127.0.0.1:%d", base + 3);
+    } else {
+        snprintf(act, sizeof act, "ipc://%s/act", dir);
+        snprintf(admin, sizeof admin, "ipc://%s/admin", dir);
+        snprintf(events, sizeof events, "ipc://%s/events", dir);
+        snprintf(echo_ep, sizeof echo_ep, "ipc://%s/echo", dir);
+    }
+    pid_t pid = start_veerd(veerd, bundle_path, dir, act, admin, events);
+    void *ctx = zmq_ctx_new();
+    void *adm = dealer(ctx, admin);
+    Veer__Wire__Request q = VEER__WIRE__REQUEST__INIT;
+    Veer__Wire__PutTask put = VEER__WIRE__PUT_TASK__INIT;
+    Veer__Wire__TaskSpec ts = VEER__WIRE__TASK_SPEC__INIT;
+    Veer__Wire__RewardSamples rs = VEER__WIRE__REWARD_SAMPLES__INIT;
+    rs.n_states = (size_t)n_ref * sd;
+    rs.states = (float *)info->reference_states;
+    rs.n_rewards = n_ref;
+    rs.rewards = rewards;
+    ts.source_case = VEER__WIRE__TASK_SPEC__SOURCE_SAMPLES;
+    ts.samples = &rs;
+    put.name = "bench";
+    put.spec = &ts;
+    q.protocol = 1;
+    q.id = 1;
+    q.body_case = VEER__WIRE__REQUEST__BODY_PUT_TASK;
+    q.put_task = &put;
+    Veer__Wire__Reply *r = NULL;
+    for (int tries = 0; tries < 50 && r == NULL; tries++)
+        r = call(adm, &q); /* the first tries may go out before veerd listens */
+    if (r == NULL || r->body_case != VEER__WIRE__REPLY__BODY_TASK) {
+        fprintf(stderr, "veerd did not take the task (see %s/veerd.log)\n", dir);
+        kill(pid, SIGKILL);
+        return 1;
+    }
+    veer__wire__reply__free_unpacked(r, NULL);
+    Veer__Wire__SwitchChannel sw = VEER__WIRE__SWITCH_CHANNEL__INIT;
+    sw.channel = "arm";
+    sw.task = "bench";
+    q.id = 2;
+    q.body_case = VEER__WIRE__REQUEST__BODY_SWITCH_CHANNEL;
+    q.switch_channel = &sw;
+    r = call(adm, &q);
+    veer__wire__reply__free_unpacked(r, NULL);
+    zmq_close(adm);
+
+    target tv = {.act = act};
+    Veer__Wire__ActRequest ar = VEER__WIRE__ACT_REQUEST__INIT;
+    ar.channel = "arm";
+    ar.n_state = sd;
+    ar.state = (float *)info->reference_states;
+    ar.deadline_us = 1000;
+    ar.seq = 1;
+    q.id = 3;
+    q.body_case = VEER__WIRE__REQUEST__BODY_ACT;
+    q.act = &ar;
+    tv.req_len = pack_request(&q, tv.req);
+    /* The echo answers with as many bytes as veerd's reply has. */
+    void *probe = dealer(ctx, act);
+    zmq_send(probe, tv.req, tv.req_len, 0);
+    uint8_t buf[4096];
+    int reply_len = zmq_recv(probe, buf, sizeof buf, 0);
+    zmq_close(probe);
+    echo e = {.ctx = ctx, .reply_len = (size_t)reply_len};
+    snprintf(e.endpoint, sizeof e.endpoint, "%s", echo_ep);
+    pthread_create(&e.th, NULL, echo_main, &e);
+    target te = tv;
+    te.act = echo_ep;
+    printf("  request %zu bytes, reply %d bytes; OpenBLAS kernel %s\n", tv.req_len, reply_len, veer_blas_kernel());
+
+    /* 3. Closed loops. */
+    veer_hist *h_echo, *h_veerd;
+    veer_hist_create(&h_echo);
+    veer_hist_create(&h_veerd);
+    closed_loop(ctx, &te, h_echo);
+    closed_loop(ctx, &tv, h_veerd);
+    print_summary("in-process inference (veer_act)", inference);
+    print_summary("closed loop, bare ZeroMQ echo", h_echo);
+    print_summary("closed loop, veerd", h_veerd);
+
+    /* 4. Paced. */
+    paced_result pe, pv;
+    run_paced(ctx, &te, 0, &pe);
+    run_paced(ctx, &tv, 1, &pv);
+    printf("  paced: %d controllers x 1 kHz x %.0f s, deadline 1 ms, latency from the scheduled send\n", CONTROLLERS,
+           seconds_paced);
+    print_summary("paced, echo", pe.latency);
+    print_summary("paced, veerd", pv.latency);
+    print_summary("pacing loop lateness (echo run)", pe.lateness);
+    print_summary("pacing loop lateness (veerd run)", pv.lateness);
+    double miss_e = (double)pe.misses / (double)pe.sent, miss_v = (double)pv.misses / (double)pv.sent;
+    printf("  misses: echo %" PRIu64 "/%" PRIu64 " (%.4f %%), veerd %" PRIu64 "/%" PRIu64
+           " (%.4f %%; %" PRIu64 " flagged by veerd, %" PRIu64 " without reply)\n",
+           pe.misses, pe.sent, 100 * miss_e, pv.misses, pv.sent, 100 * miss_v, pv.flagged, pv.lost);
+
+    /* 5. Throughput. */
+    double thr_e = throughput(ctx, &te), thr_v = throughput(ctx, &tv);
+    printf("  throughput (%d DEALERs x %d in flight): echo %.0f/s, veerd %.0f/s\n", CONTROLLERS, WINDOW, thr_e, thr_v);
+
+    /* 6. The targets, as ratios to this run's floor. */
+    double inf50 = (double)pct(inference, 50), inf999 = (double)pct(inference, 99.9);
+    double lim50 = (double)pct(h_echo, 50) + 1.2 * inf50;
+    double lim999 = 1.5 * (double)pct(h_echo, 99.9) + inf999;
+    printf("  target p50:   veerd %.1f us vs echo p50 + 1.2 x inference p50 = %.1f us  -> ratio %.2f %s\n",
+           pct(h_veerd, 50) / 1e3, lim50 / 1e3, pct(h_veerd, 50) / lim50, pct(h_veerd, 50) <= lim50 ? "MET" : "NOT MET");
+    printf("  target p99.9: veerd %.1f us vs 1.5 x echo p99.9 + inference p99.9 = %.1f us  -> ratio %.2f %s\n",
+           pct(h_veerd, 99.9) / 1e3, lim999 / 1e3, pct(h_veerd, 99.9) / lim999,
+           pct(h_veerd, 99.9) <= lim999 ? "MET" : "NOT MET");
+    if (pe.misses > 0)
+        printf("  target misses: veerd %.4f %% vs 1.5 x echo %.4f %% -> ratio %.2f %s\n", 100 * miss_v,
+               150 * miss_e, miss_v / (1.5 * miss_e), miss_v <= 1.5 * miss_e ? "MET" : "NOT MET");
+    else
+        printf("  target misses: the echo missed none; veerd missed %" PRIu64 " %s\n", pv.misses,
+               pv.misses == 0 ? "(MET)" : "(NOT MET: no floor to scale)");
+
+    e.stop = 1;
+    pthread_join(e.th, NULL);
+    kill(pid, SIGTERM);
+    int status = 0;
+    waitpid(pid, &status, 0);
+    printf("  veerd exit status %d\n", WIFEXITED(status) ? WEXITSTATUS(status) : -1);
+    zmq_ctx_term(ctx);
+    veer_hist_destroy(h_echo);
+    veer_hist_destroy(h_veerd);
+    veer_hist_destroy(inference);
+    veer_hist_destroy(pe.latency);
+    veer_hist_destroy(pe.lateness);
+    veer_hist_destroy(pv.latency);
+    veer_hist_destroy(pv.lateness);
+    veer_workspace_destroy(ws);
+    veer_bundle_close(b);
+    free(z);
+    free(rewards);
+    char cmd[600];
+    snprintf(cmd, sizeof cmd, "rm -rf '%s'", dir);
+    if (system(cmd) != 0)
+        fprintf(stderr, "could not remove %s\n", dir);
+    return 0;
+}
+
+int main(int argc, char **argv)
+{
+    if (argc < 3) {
+        fprintf(stderr, "usage: bench_veerd VEERD BUNDLE [BUNDLE...] [--seconds S]\n");
+        return 2;
+    }
+    int nb = 0;
+    const char *bundles[16];
+    for (int i = 2; i < argc; i++) {
+        if (strcmp(argv[i], "--seconds") == 0 && i + 1 < argc)
+            seconds_paced = atof(argv[++i]);
+        else if (nb < 16)
+            bundles[nb++] = argv[i];
+    }
+    printf("bench_veerd: %ld online CPUs; every figure below is from this run\n", sysconf(_SC_NPROCESSORS_ONLN));
+    for (int i = 0; i < nb; i++)
+        for (int k = 0; k < 2; k++)
+            if (bench_one(argv[1], bundles[i], k == 0 ? "tcp" : "ipc") != 0)
+                return 1;
+    return 0;
+}
