@@ -30,7 +30,7 @@ ACT_CLIPPED, ACT_FALLBACK, ACT_NONFINITE, ACT_DEADLINE, ACT_NO_TASK = 1, 2, 4, 8
 # include/veer/error.h (numbers are stable by that header's rule).
 E = {"EFIELD": -20, "ENONFINITE": -16, "EEMPTY": -30, "EDIM": -31, "ENOSIGNAL": -32, "ETOOMANY": -33,
      "EBADMSG": -40, "EMSGTYPE": -41, "EMSGSIZE": -42, "ENOTASK": -44, "ETASKACTIVE": -45,
-     "ENAMECONFLICT": -46, "EREFSHAPE": -18, "EPROTOCOL": -62}
+     "ENAMECONFLICT": -46, "ENOTREADY": -48, "EREFSHAPE": -18, "EPROTOCOL": -62}
 
 
 def free_port() -> int:

@@ -208,3 +208,38 @@ def test_controller_sees_every_switch_whole(bundle, start):
         assert r.act.task == epoch_task[e], f"epoch {e} belongs to {epoch_task[e]}, reply says {r.act.task}"
         last = e
     assert last == first + 100
+
+
+def test_puts_in_flight(bundle, start):
+    """Requests sent back to back on one socket while an encoding runs: the switch to the task
+    still being encoded is refused with ENOTREADY (answered at once, so first), the repeated put
+    and the put of the same content under another name wait for the one encoding, and all three
+    puts are answered with the same digest and vector."""
+    d, c = start(bundle)
+    rng = np.random.default_rng(9)
+    n = 5000
+    s = bundle.states[rng.integers(0, len(bundle.states), n)] + rng.normal(scale=0.01, size=(n, bundle.states.shape[1]))
+    r = rng.normal(size=n)
+    def put(name, id_):
+        q = harness.wire.Request(protocol=1, id=id_)
+        q.put_task.name = name
+        q.put_task.spec.samples.states.extend(np.asarray(s, np.float32).ravel())
+        q.put_task.spec.samples.rewards.extend(np.asarray(r, np.float32))
+        return q.SerializeToString()
+    sw = harness.wire.Request(protocol=1, id=2)
+    sw.switch_channel.channel, sw.switch_channel.task = "arm", "big"
+    for data in (put("big", 1), sw.SerializeToString(), put("big", 3), put("big-twin", 4)):
+        c.admin.send(data)
+    replies = []
+    while len(replies) < 4:
+        assert c.admin.poll(60000)
+        replies.append(harness.wire.Reply.FromString(c.admin.recv()))
+    assert replies[0].id == 2
+    expect_error(replies[0], "ENOTREADY", "switch_channel.task")
+    puts = {x.id: x for x in replies[1:]}
+    assert sorted(puts) == [1, 3, 4]
+    assert all(x.WhichOneof("body") == "task" and x.task.encoded for x in puts.values())
+    assert puts[1].task.digest == puts[3].task.digest == puts[4].task.digest
+    assert list(puts[1].task.z) == list(puts[4].task.z)
+    assert puts[4].task.name == "big-twin"
+    assert c.switch("arm", "big").channel.epoch == 1
