@@ -62,6 +62,14 @@ static void load_average(char *out, size_t len)
     out[strcspn(out, "\n")] = '\0';
 }
 
+/* This thread's CPU time: against wall time it shows how much of the run other processes took. */
+static double thread_cpu_s(void)
+{
+    struct timespec ts;
+    clock_gettime(CLOCK_THREAD_CPUTIME_ID, &ts);
+    return (double)ts.tv_sec + (double)ts.tv_nsec / 1e9;
+}
+
 static uint64_t rng_state = 0x9e3779b97f4a7c15ull;
 
 /* Uniform in [-1, 1): splitmix64, so every run draws the same inputs. */
@@ -378,26 +386,42 @@ static void bench_act(const char *label, const veer_bundle *bundle, const Veer__
 
 /* ---- task encoding ------------------------------------------------------------------- */
 
+/* Wall time and this thread's CPU time of one run. On a loaded machine the CPU time leaves
+ * out the time other processes held the core, so its ratios are the steadier ones. */
+typedef struct run_time {
+    double wall, cpu;
+} run_time;
+
+static run_time clock_start(void)
+{
+    return (run_time){(double)veer__now_ns() / 1e9, thread_cpu_s()};
+}
+
+static run_time clock_since(run_time t0)
+{
+    return (run_time){(double)veer__now_ns() / 1e9 - t0.wall, thread_cpu_s() - t0.cpu};
+}
+
 /* The floor's input is random: only the shapes matter to sgemm. */
-static double floor_encode_s(const Veer__Bundle__Model *m, int n, int block)
+static run_time floor_encode(const Veer__Bundle__Model *m, int n, int block)
 {
     floor_plan p;
     memset(&p, 0, sizeof p);
     plan_network(&p, m->backward, block, block);
     plan_finish(&p);
-    uint64_t t0 = veer__now_ns();
+    run_time t0 = clock_start();
     for (int off = 0; off < n; off += block) {
         int rows = n - off < block ? n - off : block;
         for (int i = 0; i < p.n_ops; i++)
             p.ops[i].rows = rows;
         floor_run(&p);
     }
-    double s = (double)(veer__now_ns() - t0) / 1e9;
+    run_time t = clock_since(t0);
     plan_free(&p);
-    return s;
+    return t;
 }
 
-static double veer_encode_s(const veer_bundle *bundle, const float *states, const float *r, int n,
+static run_time veer_encode(const veer_bundle *bundle, const float *states, const float *r, int n,
                             int with_report, int *rc_out)
 {
     veer_task_spec spec;
@@ -407,9 +431,19 @@ static double veer_encode_s(const veer_bundle *bundle, const float *states, cons
     spec.values = r;
     float z[1024];
     veer_task_report rep;
-    uint64_t t0 = veer__now_ns();
+    run_time t0 = clock_start();
     *rc_out = veer_task_encode(bundle, &spec, z, with_report ? &rep : NULL, NULL);
-    return (double)(veer__now_ns() - t0) / 1e9;
+    return clock_since(t0);
+}
+
+#define ENCODE_REPS_MAX 50
+
+static double median_of(const run_time *t, int n, int cpu)
+{
+    double v[ENCODE_REPS_MAX];
+    for (int i = 0; i < n; i++)
+        v[i] = cpu ? t[i].cpu : t[i].wall;
+    return median(v, (size_t)n);
 }
 
 static void bench_encode(const char *label, const veer_bundle *bundle, const Veer__Bundle__Model *m,
@@ -424,7 +458,7 @@ static void bench_encode(const char *label, const veer_bundle *bundle, const Vee
      * fastest of three on (up to) 8,192 rows. Then veer (with and without the R² fit) and the
      * floor alternate, for at least 3 rounds and about 3 s per side. */
     int rc = 0;
-    veer_encode_s(bundle, states, r, n, 1, &rc);
+    veer_encode(bundle, states, r, n, 1, &rc);
     if (rc != 0) {
         printf("  %-9s n=%-6d encode failed: %s\n", label, n, veer_strerror(rc));
         goto out;
@@ -432,31 +466,27 @@ static void bench_encode(const char *label, const veer_bundle *bundle, const Vee
     int block = blocks[0];
     double best = 1e30;
     for (int b = 0; b < 3; b++) {
-        double s = floor_encode_s(m, n < 8192 ? n : 8192, blocks[b]);
-        if (s < best) {
-            best = s;
+        double t = floor_encode(m, n < 8192 ? n : 8192, blocks[b]).cpu;
+        if (t < best) {
+            best = t;
             block = blocks[b];
         }
     }
-    double probe = floor_encode_s(m, n, block);
+    double probe = floor_encode(m, n, block).wall;
     int reps = (int)(3.0 / (probe > 1e-4 ? probe : 1e-4));
-    reps = reps < 3 ? 3 : reps > 50 ? 50 : reps;
-    double tv[50], tn[50], tf[50];
+    reps = reps < 3 ? 3 : reps > ENCODE_REPS_MAX ? ENCODE_REPS_MAX : reps;
+    run_time tv[ENCODE_REPS_MAX], tn[ENCODE_REPS_MAX], tf[ENCODE_REPS_MAX];
     for (int k = 0; k < reps; k++) {
-        tv[k] = veer_encode_s(bundle, states, r, n, 1, &rc);
-        tn[k] = veer_encode_s(bundle, states, r, n, 0, &rc);
-        tf[k] = floor_encode_s(m, n, block);
+        tv[k] = veer_encode(bundle, states, r, n, 1, &rc);
+        tn[k] = veer_encode(bundle, states, r, n, 0, &rc);
+        tf[k] = floor_encode(m, n, block);
         note_cpu();
     }
-    /* median() sorts, so the minimum is element 0 afterwards. The minimum is the run least
-     * disturbed by other users of the machine; the median is the typical one. */
-    double v = median(tv, (size_t)reps), vn = median(tn, (size_t)reps),
-           f = median(tf, (size_t)reps);
-    printf("  %-9s n=%-6d veer %8.2f ms (with R2) %8.2f ms (no report) | floor %8.2f ms | "
-           "ratio %.2fx / %.2fx (medians of %d), %.2fx / %.2fx (minima); floor blocks of %d "
-           "rows\n",
-           label, n, v * 1e3, vn * 1e3, f * 1e3, v / f, vn / f, reps, tv[0] / tf[0], tn[0] / tf[0],
-           block);
+    double v = median_of(tv, reps, 0), vn = median_of(tn, reps, 0), f = median_of(tf, reps, 0);
+    double vc = median_of(tv, reps, 1), vnc = median_of(tn, reps, 1), fc = median_of(tf, reps, 1);
+    printf("  %-9s n=%-6d veer %8.2f / %8.2f ms | floor %8.2f ms | ratio %.2fx / %.2fx wall, "
+           "%.2fx / %.2fx CPU time  (medians of %d; floor in blocks of %d rows)\n",
+           label, n, v * 1e3, vn * 1e3, f * 1e3, v / f, vn / f, vc / fc, vnc / fc, reps, block);
 out:
     free(states);
     free(r);
@@ -504,6 +534,8 @@ int main(int argc, char **argv)
     char load[128];
     load_average(load, sizeof load);
     long rss_start = rss_kib();
+    double cpu0 = thread_cpu_s();
+    uint64_t wall0 = veer__now_ns();
     note_cpu();
 
     /* Memory first, with only the STANDARD bundle open: open, encode a task, one workspace,
@@ -571,8 +603,8 @@ int main(int argc, char **argv)
     for (int i = 0; i < 2; i++)
         bench_act(labels[i], bundles[i], files[i].model, zs[i]);
 
-    printf("\ntask encoding from reward samples (veer_task_encode vs B's linear layers as "
-           "bare sgemm):\n");
+    printf("\ntask encoding from reward samples (veer_task_encode with / without the R2 report, "
+           "vs B's linear layers as bare sgemm; wall times):\n");
     static const int counts[2] = {5000, 50000};
     for (int i = 0; i < 2; i++)
         for (int c = 0; c < 2; c++)
@@ -584,7 +616,11 @@ int main(int argc, char **argv)
             snprintf(cpus + strlen(cpus), sizeof cpus - strlen(cpus), "%s%d", cpus[0] ? "," : "",
                      c);
     load_average(load, sizeof load);
-    printf("\n  the thread ran on CPU(s) %s (sched_getcpu, sampled; not pinned); load average at "
+    double wall = (double)(veer__now_ns() - wall0) / 1e9, cpu = thread_cpu_s() - cpu0;
+    printf("\n  the thread had the CPU %.0f%% of the %.0f s run (CPU time / wall time; below 100%% "
+           "means other processes took it)\n",
+           100.0 * cpu / wall, wall);
+    printf("  the thread ran on CPU(s) %s (sched_getcpu, sampled; not pinned); load average at "
            "end: %s\n",
            cpus, load);
     printf("  targets: act <= 1.2x floor, encoding <= 1.2x floor, RSS <= 1.2x weights + 16 MiB\n");
