@@ -80,6 +80,12 @@ typedef struct veer__nn {
     float *params, *grads;
     size_t nparams;
     float *scratch[2];   /* max_batch x widest, for gradients flowing backward */
+    /* Bilinear merge whose matrix branch is a lone embedding: the merge reads the table rows
+     * in place (fused_rows holds each row's table index) instead of copying (k + 1) x out
+     * values per row, and the backward pass adds the outer products straight into the table's
+     * gradient. Same results, a fraction of the memory traffic. */
+    int fused;
+    long *fused_rows;
     uint32_t widest;
 } veer__nn;
 

@@ -267,9 +267,8 @@ static void test_mlp_layers(void **state)
 
 /* The tabular form of the issue: F(s,a,z) = W[s,a]·φ(z) + b[s,a], φ(z) = ReLU(zU + c), as an
  * embedding branch and a task branch joined by the bilinear merge, plus a linear head. */
-static void test_bilinear_embedding(void **state)
+static void bilinear_case(int extra_layer)
 {
-    (void)state;
     veer__rng rng;
     veer__rng_init(&rng, 12);
     veer__nn *nn;
@@ -281,12 +280,15 @@ static void test_bilinear_embedding(void **state)
     assert_int_equal(veer__nn_add_input(nn, 0, VEER_NN_IN_ACTION, 0, NULL, 1), 0);
     uint32_t counts[3] = {2, 3, 5};
     assert_int_equal(veer__nn_add_layer(nn, 0, VEER_NN_EMBEDDING, (k + 1) * d, 3, counts), 0);
+    if (extra_layer) /* the general path: the matrix branch's output is materialised */
+        assert_int_equal(veer__nn_add_layer(nn, 0, VEER_NN_TANH, 0, 0, NULL), 0);
     assert_int_equal(veer__nn_add_input(nn, 1, VEER_NN_IN_TASK, 0, NULL, 0), 0);
     assert_int_equal(veer__nn_add_layer(nn, 1, VEER_NN_LINEAR, k, 0, NULL), 0);
     assert_int_equal(veer__nn_add_layer(nn, 1, VEER_NN_RELU, 0, 0, NULL), 0);
     veer__nn_set_merge(nn, VEER_NN_BILINEAR, k, 0, 1);
     assert_int_equal(veer__nn_finish(nn, &rng, NULL), 0);
     assert_int_equal(nn->out_dim, d);
+    assert_int_equal(nn->fused, !extra_layer); /* a lone table is read in place */
     float s[6 * 2] = {0, 0, 1, 2, 1, 1, 0, 2, 1, 0, 0, 1}, a[6] = {0, 4, 2, 3, 1, 4}, z[6 * 4];
     fill_normal(z, 24, &rng, 1);
     check_net(nn, 6, s, a, z, &rng);
@@ -295,6 +297,13 @@ static void test_bilinear_embedding(void **state)
     float bad_a[1] = {5};
     assert_int_equal(veer__nn_forward(nn, 1, s, bad_a, z, &y), VEER_EINVAL);
     veer__nn_free(nn);
+}
+
+static void test_bilinear_embedding(void **state)
+{
+    (void)state;
+    bilinear_case(0);
+    bilinear_case(1);
 }
 
 /* Concat of two branches (one-hot discrete action) and a head with two layers. */
