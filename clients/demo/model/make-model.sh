@@ -1,0 +1,52 @@
+#!/usr/bin/env bash
+# Re-creates the shipped demo bundle (clients/demo/model/parcel-arm.veer) from nothing:
+#   1. a reward-free log of the demo arm (veer-arm-log: OU noise mixed with move-and-hold
+#      segments, 100,000 decisions of 20 ms);
+#   2. `veer train` in chunks (the trainer resumes from its checkpoint and extends to the larger
+#      --steps), a bundle exported after each chunk;
+#   3. the held-out evaluation (veer-arm-fb-eval --select: the task suite from start states that
+#      the reported evaluation does not use) picks the best chunk's bundle;
+#   4. copies it and its training curve here.
+# Usage: clients/demo/model/make-model.sh [BUILD_DIR] [WORK_DIR]
+# Takes about 20-25 minutes on 2 shared cores; stops starting chunks after TRAIN_BUDGET_S.
+set -euo pipefail
+here="$(cd "$(dirname "$0")" && pwd)"
+root="$(cd "$here/../../.." && pwd)"
+build="$(cd "${1:-$root/build}" && pwd)"
+work="${2:-$build/demo-model}"; mkdir -p "$work"; work="$(cd "$work" && pwd)"
+bin="$build/bin"
+steps_per_chunk="${CHUNK_STEPS:-3000}"
+chunks="${CHUNKS:-8}"
+budget="${TRAIN_BUDGET_S:-1680}"
+mkdir -p "$work"
+cd "$work"
+
+"$bin/veer-arm-log" --out log --rng 1 --episodes 400 --length 250 --decision-ms 20 --overwrite
+
+features=shoulder_sin,shoulder_cos,elbow_sin,elbow_cos,shoulder_vel,elbow_vel,gripper_x,gripper_y
+# d = 32, 256-wide F, B and actor, batch 256, learning rate 3e-4 (the trainer's "small" preset),
+# 20 ms decisions and discount 0.98: a horizon of 1/(1-0.98) = 50 decisions = 1 s, longer than a
+# swing between bins (about 0.6 s) and short enough to learn.
+start=$(date +%s)
+for i in $(seq 1 "$chunks"); do
+    steps=$((i * steps_per_chunk))
+    if [ $(( $(date +%s) - start )) -gt "$budget" ]; then
+        echo "make-model: time budget reached before chunk $i; keeping what was trained" >&2
+        break
+    fi
+    SOURCE_DATE_EPOCH=1764633600 "$bin/veer" train \
+        --states log/states.npy --actions log/actions.npy --next-states log/next_states.npy \
+        --dones log/dones.npy --continuous -12:12,-6:6 --step 0.02 --features "$features" \
+        --preset small --z-dim 32 --hidden 256 --b-hidden 256 --batch 256 --discount 0.98 \
+        --seed 1 --threads 1 --eval-every 500 --checkpoint-every 1000 \
+        --fallback 0,0 --model-version "parcel-arm-s$steps" \
+        --checkpoint train.ckpt --curve curve.csv --steps "$steps" --out "chunk-$steps.veer" --quiet
+    echo "make-model: chunk $i done: $steps steps at $(( $(date +%s) - start )) s"
+done
+echo "make-model: training took $(( $(date +%s) - start )) s"
+
+if [ "${SKIP_SELECT:-0}" = 1 ]; then exit 0; fi
+best=$("$bin/veer-arm-fb-eval" --select chunk-*.veer)
+echo "make-model: best by the held-out evaluation: $best"
+cp "$best" "$here/parcel-arm.veer"
+cp curve.csv "$here/training-curve.csv"
