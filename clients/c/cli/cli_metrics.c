@@ -371,3 +371,18 @@ size_t veer_cli_metrics_buckets(const veer_cli_metrics *m, const char *name, con
     }
     return n;
 }
+
+void veer_cli_duration(double seconds, char *out, size_t cap)
+{
+    if (!isfinite(seconds))
+        snprintf(out, cap, "%s", seconds > 0 ? "inf" : "-");
+    else if (seconds < 1e-6)
+        snprintf(out, cap, "%.0fns", seconds * 1e9);
+    else if (seconds < 1e-3)
+        snprintf(out, cap, "%.1fus", seconds * 1e6);
+    else if (seconds < 1.0)
+        snprintf(out, cap, "%.2fms", seconds * 1e3);
+    else
+        snprintf(out, cap, "%.2fs", seconds);
+}
+

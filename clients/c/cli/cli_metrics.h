@@ -61,4 +61,8 @@ int veer_cli_metrics_get2(const veer_cli_metrics *m, const char *name, const cha
 size_t veer_cli_metrics_buckets(const veer_cli_metrics *m, const char *name, const char *key, const char *value,
                                 double *le, double *cumulative, size_t cap);
 
+/* A duration in seconds as text with a unit: "850ns", "12.3us", "1.20ms", "1.50s"; "inf" for +Inf
+ * and "-" for NaN. */
+void veer_cli_duration(double seconds, char *out, size_t cap);
+
 #endif

@@ -77,20 +77,6 @@ static void put(screen *s, const char *fmt, ...)
 static const char *sgr(const screen *s, const char *code) { return s->color ? code : ""; }
 #define RESET(s) sgr(s, "\033[0m")
 
-static void duration(double seconds, char *out, size_t cap)
-{
-    if (!isfinite(seconds))
-        snprintf(out, cap, "-");
-    else if (seconds < 1e-6)
-        snprintf(out, cap, "%.0fns", seconds * 1e9);
-    else if (seconds < 1e-3)
-        snprintf(out, cap, "%.1fus", seconds * 1e6);
-    else if (seconds < 1.0)
-        snprintf(out, cap, "%.2fms", seconds * 1e3);
-    else
-        snprintf(out, cap, "%.2fs", seconds);
-}
-
 static double get(const veer_cli_metrics *m, const char *name, const char *key, const char *value)
 {
     double v = NAN;
@@ -177,7 +163,7 @@ static void render_latency(screen *s, const veer_cli_metrics *cur, const veer_cl
             double v = NAN;
             veer_cli_metrics_get2(cur, "veer_act_stage_recent_seconds", "stage", STAGES[st], "quantile", Q[q], &v);
             char d[32];
-            duration(v, d, sizeof d);
+            veer_cli_duration(v, d, sizeof d);
             put(s, " %9s", d);
         }
         put(s, "\n");
@@ -189,31 +175,36 @@ static void render_latency(screen *s, const veer_cli_metrics *cur, const veer_cl
     size_t nb = prev ? veer_cli_metrics_buckets(prev, "veer_act_stage_seconds", "stage", "total", ble, before,
                                                 MAX_BUCKETS)
                      : 0;
+    /* The last interval's requests; when there were none, everything since veerd started. */
     double count[MAX_BUCKETS], top = 0;
     size_t first = n, last = 0;
-    for (size_t i = 0; i < n; i++) {
-        double c = now[i] - (i > 0 ? now[i - 1] : 0);
-        if (nb == n)
-            c -= before[i] - (i > 0 ? before[i - 1] : 0);
-        count[i] = c;
-        if (c > 0) {
-            first = first < i ? first : i;
-            last = i;
-            top = c > top ? c : top;
+    int since_start = nb != n;
+    for (int pass = 0; pass < 2 && first == n; pass++) {
+        since_start = since_start || pass == 1;
+        for (size_t i = 0; i < n; i++) {
+            double c = now[i] - (i > 0 ? now[i - 1] : 0);
+            if (!since_start)
+                c -= before[i] - (i > 0 ? before[i - 1] : 0);
+            count[i] = c;
+            if (c > 0) {
+                first = first < i ? first : i;
+                last = i;
+                top = c > top ? c : top;
+            }
         }
     }
-    put(s, "\ntotal time, %s:\n", nb == n ? "requests in the last interval" : "requests since start");
+    put(s, "\ntotal time, %s:\n", since_start ? "requests since start" : "requests in the last interval");
     if (first == n) {
         put(s, "  (no requests)\n\n");
         return;
     }
     for (size_t i = first; i <= last; i++) {
         char lo[32], hi[32];
-        duration(i > 0 ? le[i - 1] : 0, lo, sizeof lo);
+        veer_cli_duration(i > 0 ? le[i - 1] : 0, lo, sizeof lo);
         if (isinf(le[i]))
             snprintf(hi, sizeof hi, "inf");
         else
-            duration(le[i], hi, sizeof hi);
+            veer_cli_duration(le[i], hi, sizeof hi);
         int w = (int)lround(BAR_WIDTH * count[i] / top);
         if (w == 0 && count[i] > 0)
             w = 1;
