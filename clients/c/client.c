@@ -345,6 +345,8 @@ int veer_client_describe(veer_client *c, const veer_client_model **out, veer_err
         why = "veerd's fallback action does not have action_dim values";
     else if (m->state_dim == 0 || m->state_dim > VEER_CLIENT_MAX_STATE)
         why = "veerd's state_dim is 0 or larger than this client supports";
+    else if (m->n_feature_names != m->state_dim)
+        why = "veerd's feature names are not state_dim in number";
     else if (m->n_action_low != m->n_action_high ||
              (m->n_action_low != 0 && m->n_action_low != m->action_dim))
         why = "veerd's action bounds do not have action_dim values";
