@@ -238,6 +238,7 @@ static void start(void)
 }
 
 static volatile uint64_t sink;
+static volatile double sink_f; /* floats are summed as floats: a negative one cast to an integer is undefined */
 
 static void read_string(const char *s)
 {
@@ -250,7 +251,7 @@ static void read_task(const veer_client_task *t)
 {
     read_string(t->name);
     for (uint32_t i = 0; i < t->z_dim; i++)
-        sink += (uint64_t)t->z[i];
+        sink_f += t->z[i];
     for (uint32_t i = 0; i < t->active_on_count; i++)
         read_string(t->active_on[i]);
 }
@@ -266,7 +267,7 @@ static void read_model(const veer_client_model *m)
         if (!isfinite(m->fallback_action[i]))
             abort();
         if (m->action_low != NULL)
-            sink += (uint64_t)m->action_low[i] + (uint64_t)m->action_high[i];
+            sink_f += m->action_low[i] + m->action_high[i];
     }
 }
 
