@@ -235,7 +235,7 @@ int veer__tlog_load(const veer__tlog_spec *spec, veer__tlog *log, veer_error *er
                                      v);
                 goto done;
             }
-            log->cont[i] = (float)(1.0 - v);
+            log->cont[i] = spec->ends_truncated ? 1.0f : (float)(1.0 - v);
         }
     }
 

@@ -18,6 +18,9 @@
 typedef struct veer__tlog_spec {
     const char *states_path, *actions_path, *next_states_path;
     const char *dones_path;  /* NULL: no episode ends */
+    int ends_truncated;      /* 1: the ends are time-limit cuts whose next states are real, so
+                                the successor measure continues through them (checked, hashed,
+                                but they do not stop the bootstrap); 0: true terminal states */
     uint32_t action_count;   /* > 0: discrete actions 0..count-1 */
     uint32_t action_dim;     /* continuous: the width; discrete: 1 */
     const float *low, *high; /* continuous bounds, action_dim each */

@@ -34,6 +34,7 @@ enum { VEER_TRAIN_MLP = 1, VEER_TRAIN_TABLE = 2 };
 typedef struct veer_train_config {
     /* The log and what it means. */
     const char *states_path, *actions_path, *next_states_path, *dones_path;
+    int ends_truncated;           /* the dones are time-limit cuts, not terminal states */
     uint32_t action_count;        /* > 0: discrete */
     uint32_t action_dim;          /* continuous */
     float low[VEER_TRAIN_MAX_ACTION_DIM], high[VEER_TRAIN_MAX_ACTION_DIM];

@@ -136,9 +136,13 @@ static void close_to(const char *what, size_t i, double got, double want, double
 /* Trains in memory, exports, reopens with libveer and compares the networks. */
 static void roundtrip(veer_train_config *c)
 {
-    veer__tlog_spec spec = {c->states_path, c->actions_path, c->next_states_path, NULL,
-                            c->action_count, c->action_count ? 1 : c->action_dim, c->low, c->high,
-                            c->arch == VEER_TRAIN_TABLE ? c->nstate_counts : 0, c->state_counts};
+    veer__tlog_spec spec = {.states_path = c->states_path, .actions_path = c->actions_path,
+                            .next_states_path = c->next_states_path,
+                            .action_count = c->action_count,
+                            .action_dim = c->action_count ? 1 : c->action_dim,
+                            .low = c->low, .high = c->high,
+                            .nstate_counts = c->arch == VEER_TRAIN_TABLE ? c->nstate_counts : 0,
+                            .state_counts = c->state_counts};
     veer__tlog log;
     veer_error err;
     assert_int_equal(veer__tlog_load(&spec, &log, &err), 0);

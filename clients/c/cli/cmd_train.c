@@ -25,6 +25,9 @@ static void usage(FILE *to)
         "or (n,) indices (int32/int64 also accepted for discrete), episode ends (n,) of 0/1.\n"
         "\n"
         "log:      --features NAME,...     state feature names (default f0, f1, ...)\n"
+        "          --ends terminal|truncated  what the --dones rows mean: terminal states (no\n"
+        "                                  successor; the default) or time-limit cuts whose\n"
+        "                                  next states are real (training continues through)\n"
         "          --step SECONDS          decision time step of the log (stored in the bundle)\n"
         "presets:  --preset published|small|tabular   (default small; flags override it)\n"
         "networks: --arch mlp|table  --state-counts C,...  (table: count per state feature)\n"
@@ -196,6 +199,13 @@ static int run(int argc, char **argv)
                 names[c.nfeature_names++] = tok;
             }
             c.feature_names = names;
+        } else if (IS("--ends")) {
+            if (strcmp(v, "terminal") == 0)
+                c.ends_truncated = 0;
+            else if (strcmp(v, "truncated") == 0)
+                c.ends_truncated = 1;
+            else
+                rc = bad_value(f, v, "terminal or truncated");
         } else if (IS("--arch")) {
             if (strcmp(v, "mlp") == 0)
                 c.arch = VEER_TRAIN_MLP;
