@@ -8,7 +8,8 @@
 
 #include <stdint.h>
 
-#define VEER__BURST_SAMPLES 64 /* counter samples kept; the window is cut into at most this many */
+#define VEER__BURST_SAMPLES 64 /* counter samples kept; the window is cut into at most this many   \
+                                */
 
 typedef struct veer__burst {
     uint32_t threshold;

@@ -113,15 +113,18 @@ int veer__http_parse_address(const char *address, struct sockaddr_storage *out, 
 {
     char host[128];
     const char *colon = strrchr(address, ':');
-    if (address[0] == '\0' || colon == NULL || colon == address || (size_t)(colon - address) >= sizeof host)
+    if (address[0] == '\0' || colon == NULL || colon == address ||
+        (size_t)(colon - address) >= sizeof host)
         return veer__error_set(err, VEER_ECONFIG, "--http",
-                               "--http: '%s' is not HOST:PORT (for example 127.0.0.1:9464)", address);
+                               "--http: '%s' is not HOST:PORT (for example 127.0.0.1:9464)",
+                               address);
     memcpy(host, address, (size_t)(colon - address));
     host[colon - address] = '\0';
     char *end = NULL;
     long port = strtol(colon + 1, &end, 10);
     if (colon[1] == '\0' || *end != '\0' || port < 0 || port > 65535)
-        return veer__error_set(err, VEER_ECONFIG, "--http", "--http: '%s' has no port from 0 to 65535", address);
+        return veer__error_set(err, VEER_ECONFIG, "--http",
+                               "--http: '%s' has no port from 0 to 65535", address);
     memset(out, 0, sizeof *out);
     if (strcmp(host, "localhost") == 0)
         snprintf(host, sizeof host, "127.0.0.1");
@@ -133,8 +136,9 @@ int veer__http_parse_address(const char *address, struct sockaddr_storage *out, 
     } else if (uv_ip4_addr(host, (int)port, (struct sockaddr_in *)out) == 0) {
         return 0;
     }
-    return veer__error_set(err, VEER_ECONFIG, "--http",
-                           "--http: '%s' is not an IPv4 address, a bracketed IPv6 address or localhost", host);
+    return veer__error_set(
+        err, VEER_ECONFIG, "--http",
+        "--http: '%s' is not an IPv4 address, a bracketed IPv6 address or localhost", host);
 }
 
 /* ---- connections -------------------------------------------------------------------------- */
@@ -213,32 +217,44 @@ static void on_written(uv_write_t *req, int status)
 static const char *reason(int status)
 {
     switch (status) {
-    case 200: return "OK";
-    case 400: return "Bad Request";
-    case 404: return "Not Found";
-    case 405: return "Method Not Allowed";
-    case 408: return "Request Timeout";
-    case 413: return "Content Too Large";
-    case 431: return "Request Header Fields Too Large";
-    case 500: return "Internal Server Error";
-    case 503: return "Service Unavailable";
-    case 505: return "HTTP Version Not Supported";
-    default: return "Status";
+    case 200:
+        return "OK";
+    case 400:
+        return "Bad Request";
+    case 404:
+        return "Not Found";
+    case 405:
+        return "Method Not Allowed";
+    case 408:
+        return "Request Timeout";
+    case 413:
+        return "Content Too Large";
+    case 431:
+        return "Request Header Fields Too Large";
+    case 500:
+        return "Internal Server Error";
+    case 503:
+        return "Service Unavailable";
+    case 505:
+        return "HTTP Version Not Supported";
+    default:
+        return "Status";
     }
 }
 
 /* Queues one response. `with_body` 0 for HEAD. `close_after`: a lingering close follows. */
-static void conn_send(conn *c, int status, const char *content_type, const char *body, size_t len, int with_body,
-                      int close_after)
+static void conn_send(conn *c, int status, const char *content_type, const char *body, size_t len,
+                      int with_body, int close_after)
 {
     if (c->state != CONN_READING)
         return;
     char head[512];
-    int hl = snprintf(head, sizeof head,
-                      "HTTP/1.1 %d %s\r\nContent-Type: %s\r\nContent-Length: %zu\r\nCache-Control: no-store\r\n"
-                      "%s%s\r\n",
-                      status, reason(status), content_type, len, status == 405 ? "Allow: GET, HEAD\r\n" : "",
-                      close_after ? "Connection: close\r\n" : "");
+    int hl = snprintf(
+        head, sizeof head,
+        "HTTP/1.1 %d %s\r\nContent-Type: %s\r\nContent-Length: %zu\r\nCache-Control: no-store\r\n"
+        "%s%s\r\n",
+        status, reason(status), content_type, len, status == 405 ? "Allow: GET, HEAD\r\n" : "",
+        close_after ? "Connection: close\r\n" : "");
     size_t total = (size_t)hl + (with_body ? len : 0);
     write_req *w = veer__malloc(sizeof *w + total);
     if (w == NULL) {
@@ -335,7 +351,8 @@ static int on_message_complete(http_parser *p)
     }
     char path[1024];
     if (u.field_set & (1u << UF_PATH)) {
-        size_t n = u.field_data[UF_PATH].len < sizeof path - 1 ? u.field_data[UF_PATH].len : sizeof path - 1;
+        size_t n = u.field_data[UF_PATH].len < sizeof path - 1 ? u.field_data[UF_PATH].len
+                                                               : sizeof path - 1;
         memcpy(path, c->url + u.field_data[UF_PATH].off, n);
         path[n] = '\0';
     } else {
@@ -344,10 +361,11 @@ static int on_message_complete(http_parser *p)
     veer__http_response resp = {.status = 200, .content_type = "text/plain; charset=utf-8"};
     h->cfg.handler(h->cfg.ctx, path, &resp);
     if (resp.failed)
-        conn_send(c, 500, "text/plain; charset=utf-8", "500 Internal Server Error: out of memory\n", 41, method != HTTP_HEAD, 1);
+        conn_send(c, 500, "text/plain; charset=utf-8", "500 Internal Server Error: out of memory\n",
+                  41, method != HTTP_HEAD, 1);
     else
-        conn_send(c, resp.status, resp.content_type, resp.body ? resp.body : "", resp.len, method != HTTP_HEAD,
-                  !keep);
+        conn_send(c, resp.status, resp.content_type, resp.body ? resp.body : "", resp.len,
+                  method != HTTP_HEAD, !keep);
     veer__free(resp.body);
     if (!keep) {
         c->answered = 1;
@@ -392,7 +410,8 @@ static void on_read(uv_stream_t *stream, ssize_t nread, const uv_buf_t *buf)
         conn_send_error(c, 431, "the request line and headers are over the size limit");
     } else if (e != HPE_OK || used != (size_t)nread) {
         char msg[160];
-        snprintf(msg, sizeof msg, "malformed HTTP request (%s: %s)", http_errno_name(e), http_errno_description(e));
+        snprintf(msg, sizeof msg, "malformed HTTP request (%s: %s)", http_errno_name(e),
+                 http_errno_description(e));
         conn_send_error(c, 400, msg);
     }
 }
@@ -474,8 +493,8 @@ int veer__http_start(const veer__http_config *cfg, veer__http **out, veer_error 
     if (uvrc == 0)
         uvrc = uv_listen((uv_stream_t *)&h->listener, 128, on_connection);
     if (uvrc != 0) {
-        rc = veer__error_set(err, VEER_EIO, "--http", "--http: cannot listen on '%s': %s", cfg->address,
-                             uv_strerror(uvrc));
+        rc = veer__error_set(err, VEER_EIO, "--http", "--http: cannot listen on '%s': %s",
+                             cfg->address, uv_strerror(uvrc));
         h->stopping = 1;
         veer__http_stop(h, NULL, NULL);
         return rc;

@@ -37,7 +37,8 @@ typedef struct veer__http_response {
 } veer__http_response;
 
 void veer__http_body_append(veer__http_response *r, const char *text, size_t len);
-void veer__http_body_printf(veer__http_response *r, const char *fmt, ...) __attribute__((format(printf, 2, 3)));
+void veer__http_body_printf(veer__http_response *r, const char *fmt, ...)
+    __attribute__((format(printf, 2, 3)));
 
 /* Called for each GET or HEAD request (for HEAD the body is measured and dropped). `path` is the
  * URL's path without the query string. Sets resp->status: 404 for a path it does not serve. */

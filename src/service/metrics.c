@@ -15,7 +15,8 @@
 
 #define RECENT_SLOTS 10 /* one-second slots behind the "recent" percentiles */
 
-static const char *const STAGE_NAMES[VEER__ACT_STAGE_COUNT] = {"decode", "policy", "reply", "total"};
+static const char *const STAGE_NAMES[VEER__ACT_STAGE_COUNT] = {"decode", "policy", "reply",
+                                                               "total"};
 
 typedef struct stage_hists {
     veer_hist *cumulative;
@@ -112,7 +113,8 @@ static void family(veer__http_response *r, const char *name, const char *type, c
 }
 
 /* A sample's name with one optional label: name{label="value"}. */
-static void sample_name(veer__http_response *r, const char *name, const char *label, const char *value)
+static void sample_name(veer__http_response *r, const char *name, const char *label,
+                        const char *value)
 {
     veer__http_body_printf(r, "%s", name);
     if (label != NULL) {
@@ -123,7 +125,8 @@ static void sample_name(veer__http_response *r, const char *name, const char *la
 }
 
 /* One sample: name{label="value"} number. `label` NULL for none. */
-static void sample1(veer__http_response *r, const char *name, const char *label, const char *value, double v)
+static void sample1(veer__http_response *r, const char *name, const char *label, const char *value,
+                    double v)
 {
     sample_name(r, name, label, value);
     if (isnan(v))
@@ -134,33 +137,41 @@ static void sample1(veer__http_response *r, const char *name, const char *label,
         veer__http_body_printf(r, " %.17g\n", v);
 }
 
-static void counter_u64(veer__http_response *r, const char *name, const char *label, const char *value, uint64_t v)
+static void counter_u64(veer__http_response *r, const char *name, const char *label,
+                        const char *value, uint64_t v)
 {
     sample_name(r, name, label, value);
     veer__http_body_printf(r, " %llu\n", (unsigned long long)v);
 }
 
-static void render_counters(veer__metrics *m, const veer__metrics_extra *extra, veer__http_response *r)
+static void render_counters(veer__metrics *m, const veer__metrics_extra *extra,
+                            veer__http_response *r)
 {
     veer__act_counters c = {0};
     if (m->cfg.act != NULL)
         veer__act_counters_get(m->cfg.act, &c);
-    family(r, "veer_acts_total", "counter", "Act requests answered with an action (policy or fallback).");
+    family(r, "veer_acts_total", "counter",
+           "Act requests answered with an action (policy or fallback).");
     counter_u64(r, "veer_acts_total", NULL, NULL, c.acts);
-    family(r, "veer_act_fallbacks_total", "counter", "Act replies that carried the fallback action.");
+    family(r, "veer_act_fallbacks_total", "counter",
+           "Act replies that carried the fallback action.");
     counter_u64(r, "veer_act_fallbacks_total", NULL, NULL, c.fallbacks);
     family(r, "veer_act_deadline_misses_total", "counter",
-           "Act replies that got the fallback action because the deadline could not be or was not met.");
+           "Act replies that got the fallback action because the deadline could not be or was not "
+           "met.");
     counter_u64(r, "veer_act_deadline_misses_total", NULL, NULL, c.deadline_misses);
-    family(r, "veer_act_no_task_total", "counter", "Act requests on a channel without an active task.");
+    family(r, "veer_act_no_task_total", "counter",
+           "Act requests on a channel without an active task.");
     counter_u64(r, "veer_act_no_task_total", NULL, NULL, c.no_task);
-    family(r, "veer_act_errors_total", "counter", "Error replies on the act socket, by error code.");
+    family(r, "veer_act_errors_total", "counter",
+           "Error replies on the act socket, by error code.");
     for (int code = 1; code < (int)VEER__ACT_ERROR_CODES && m->cfg.act != NULL; code++) {
         uint64_t n = veer__act_errors_by_code(m->cfg.act, -code);
         if (n != 0)
             counter_u64(r, "veer_act_errors_total", "code", veer_errname(-code), n);
     }
-    family(r, "veer_deadline_bursts_total", "counter", "Bursts of deadline misses announced on the events socket.");
+    family(r, "veer_deadline_bursts_total", "counter",
+           "Bursts of deadline misses announced on the events socket.");
     counter_u64(r, "veer_deadline_bursts_total", NULL, NULL, extra ? extra->deadline_bursts : 0);
     family(r, "veer_http_requests_total", "counter", "Requests answered by this HTTP endpoint.");
     counter_u64(r, "veer_http_requests_total", NULL, NULL, extra ? extra->http_requests : 0);
@@ -184,7 +195,8 @@ static void render_channels(veer__metrics *m, veer__http_response *r)
         if (ch != NULL)
             counter_u64(r, "veer_channel_switches_total", "channel", ch->name, ch->epoch);
     }
-    family(r, "veer_channel_acts_total", "counter", "Act requests answered on one channel since start.");
+    family(r, "veer_channel_acts_total", "counter",
+           "Act requests answered on one channel since start.");
     for (uint32_t i = 0; i < veer__channels_capacity(chs); i++) {
         veer__channel *ch = veer__channels_slot(chs, i);
         if (ch != NULL)
@@ -209,7 +221,8 @@ static void render_channels(veer__metrics *m, veer__http_response *r)
     veer__registry *reg = m->cfg.store->registry;
     for (uint32_t i = 0; i < veer__registry_count(reg); i++) {
         const veer__task *t = veer__registry_at(reg, i);
-        state[t->content->state <= VEER__CONTENT_FAILED ? t->content->state : VEER__CONTENT_FAILED]++;
+        state[t->content->state <= VEER__CONTENT_FAILED ? t->content->state
+                                                        : VEER__CONTENT_FAILED]++;
     }
     family(r, "veer_tasks", "gauge", "Tasks in the registry by encoding state.");
     counter_u64(r, "veer_tasks", "state", "pending", state[VEER__CONTENT_PENDING]);
@@ -239,19 +252,20 @@ static void render_latency(veer__metrics *m, veer__http_response *r)
         const veer_hist *h = m->stage[s].cumulative;
         uint64_t count = veer_hist_count(h);
         for (int b = 0; b < nb; b++)
-            veer__http_body_printf(r, "veer_act_stage_seconds_bucket{stage=\"%s\",le=\"%.9g\"} %llu\n",
-                                   STAGE_NAMES[s], (double)bounds[b] * 1e-9,
-                                   (unsigned long long)veer_hist_count_le(h, bounds[b]));
-        veer__http_body_printf(r, "veer_act_stage_seconds_bucket{stage=\"%s\",le=\"+Inf\"} %llu\n", STAGE_NAMES[s],
-                               (unsigned long long)count);
-        veer__http_body_printf(r, "veer_act_stage_seconds_sum{stage=\"%s\"} %.17g\n", STAGE_NAMES[s],
-                               (double)veer_hist_sum(h) * 1e-9);
-        veer__http_body_printf(r, "veer_act_stage_seconds_count{stage=\"%s\"} %llu\n", STAGE_NAMES[s],
-                               (unsigned long long)count);
+            veer__http_body_printf(
+                r, "veer_act_stage_seconds_bucket{stage=\"%s\",le=\"%.9g\"} %llu\n", STAGE_NAMES[s],
+                (double)bounds[b] * 1e-9, (unsigned long long)veer_hist_count_le(h, bounds[b]));
+        veer__http_body_printf(r, "veer_act_stage_seconds_bucket{stage=\"%s\",le=\"+Inf\"} %llu\n",
+                               STAGE_NAMES[s], (unsigned long long)count);
+        veer__http_body_printf(r, "veer_act_stage_seconds_sum{stage=\"%s\"} %.17g\n",
+                               STAGE_NAMES[s], (double)veer_hist_sum(h) * 1e-9);
+        veer__http_body_printf(r, "veer_act_stage_seconds_count{stage=\"%s\"} %llu\n",
+                               STAGE_NAMES[s], (unsigned long long)count);
     }
 
     family(r, "veer_act_stage_recent_seconds", "gauge",
-           "Percentiles per stage over the last 10 seconds (quantile 1 is the maximum); absent when nothing "
+           "Percentiles per stage over the last 10 seconds (quantile 1 is the maximum); absent "
+           "when nothing "
            "was recorded.");
     static const double quantiles[] = {0.5, 0.9, 0.99, 0.999, 1.0};
     uint64_t recent_count[VEER__ACT_STAGE_COUNT] = {0};
@@ -264,14 +278,16 @@ static void render_latency(veer__metrics *m, veer__http_response *r)
             uint64_t v;
             if (veer_hist_percentile(m->scratch, 100.0 * quantiles[q], &v) != 0)
                 break;
-            veer__http_body_printf(r, "veer_act_stage_recent_seconds{stage=\"%s\",quantile=\"%g\"} %.9g\n",
-                                   STAGE_NAMES[s], quantiles[q], (double)v * 1e-9);
+            veer__http_body_printf(
+                r, "veer_act_stage_recent_seconds{stage=\"%s\",quantile=\"%g\"} %.9g\n",
+                STAGE_NAMES[s], quantiles[q], (double)v * 1e-9);
         }
     }
-    family(r, "veer_act_stage_recent_count", "gauge", "Requests recorded per stage over the last 10 seconds.");
+    family(r, "veer_act_stage_recent_count", "gauge",
+           "Requests recorded per stage over the last 10 seconds.");
     for (int s = 0; s < VEER__ACT_STAGE_COUNT && !m->cfg.monitors_off; s++)
-        veer__http_body_printf(r, "veer_act_stage_recent_count{stage=\"%s\"} %llu\n", STAGE_NAMES[s],
-                               (unsigned long long)recent_count[s]);
+        veer__http_body_printf(r, "veer_act_stage_recent_count{stage=\"%s\"} %llu\n",
+                               STAGE_NAMES[s], (unsigned long long)recent_count[s]);
 }
 
 /* One drift sample: name{scope="service"[,feature="..."]} value. */
@@ -295,18 +311,25 @@ static void render_drift(veer__metrics *m, veer__http_response *r)
     struct {
         const char *name, *type, *help;
     } const fam[] = {
-        {"veer_drift_window_states", "gauge", "States in the drift window (it is full at veer_drift_window_size)."},
+        {"veer_drift_window_states", "gauge",
+         "States in the drift window (it is full at veer_drift_window_size)."},
         {"veer_drift_window_size", "gauge", "Configured size of the drift window."},
         {"veer_drift_states_total", "counter", "States the drift monitor has taken."},
-        {"veer_drift_out_of_coverage_total", "counter", "States beyond the training 99.9th percentile distance."},
-        {"veer_drift_out_of_coverage_window", "gauge", "Of the window's states, those beyond the training p99.9."},
-        {"veer_drift_psi", "gauge", "Population Stability Index of each feature over the training quantile bins."},
-        {"veer_drift_mean_shift", "gauge", "(window mean - training mean) / training std, per feature."},
+        {"veer_drift_out_of_coverage_total", "counter",
+         "States beyond the training 99.9th percentile distance."},
+        {"veer_drift_out_of_coverage_window", "gauge",
+         "Of the window's states, those beyond the training p99.9."},
+        {"veer_drift_psi", "gauge",
+         "Population Stability Index of each feature over the training quantile bins."},
+        {"veer_drift_mean_shift", "gauge",
+         "(window mean - training mean) / training std, per feature."},
         {"veer_drift_psi_level", "gauge", "PSI level per feature: 0 ok, 1 watch, 2 alarm."},
         {"veer_drift_psi_max", "gauge", "The largest feature PSI."},
-        {"veer_drift_psi_overall_level", "gauge", "The highest feature PSI level: 0 ok, 1 watch, 2 alarm."},
+        {"veer_drift_psi_overall_level", "gauge",
+         "The highest feature PSI level: 0 ok, 1 watch, 2 alarm."},
         {"veer_drift_exceed_rate", "gauge",
-         "Share of window states beyond the training 99th percentile Mahalanobis distance (about 0.01)."},
+         "Share of window states beyond the training 99th percentile Mahalanobis distance (about "
+         "0.01)."},
         {"veer_drift_exceed_level", "gauge", "Exceedance level: 0 ok, 2 alarm."},
         {"veer_drift_level", "gauge", "Overall drift level: 0 ok, 1 watch, 2 alarm."},
     };
@@ -315,11 +338,21 @@ static void render_drift(veer__metrics *m, veer__http_response *r)
         if (!have)
             continue;
         switch (f) {
-        case 0: drift_sample(r, fam[f].name, NULL, d->fill); break;
-        case 1: drift_sample(r, fam[f].name, NULL, d->window); break;
-        case 2: drift_sample(r, fam[f].name, NULL, (double)d->states_total); break;
-        case 3: drift_sample(r, fam[f].name, NULL, (double)d->out_of_coverage_total); break;
-        case 4: drift_sample(r, fam[f].name, NULL, d->out_of_coverage_window); break;
+        case 0:
+            drift_sample(r, fam[f].name, NULL, d->fill);
+            break;
+        case 1:
+            drift_sample(r, fam[f].name, NULL, d->window);
+            break;
+        case 2:
+            drift_sample(r, fam[f].name, NULL, (double)d->states_total);
+            break;
+        case 3:
+            drift_sample(r, fam[f].name, NULL, (double)d->out_of_coverage_total);
+            break;
+        case 4:
+            drift_sample(r, fam[f].name, NULL, d->out_of_coverage_window);
+            break;
         case 5:
             for (uint32_t i = 0; i < d->state_dim; i++)
                 drift_sample(r, fam[f].name, names[i], d->psi[i]);
@@ -332,11 +365,21 @@ static void render_drift(veer__metrics *m, veer__http_response *r)
             for (uint32_t i = 0; i < d->state_dim; i++)
                 drift_sample(r, fam[f].name, names[i], (double)d->psi_level[i]);
             break;
-        case 8: drift_sample(r, fam[f].name, NULL, d->psi_max); break;
-        case 9: drift_sample(r, fam[f].name, NULL, (double)d->psi_overall); break;
-        case 10: drift_sample(r, fam[f].name, NULL, d->exceed_rate); break;
-        case 11: drift_sample(r, fam[f].name, NULL, (double)d->exceed_level); break;
-        case 12: drift_sample(r, fam[f].name, NULL, (double)d->level); break;
+        case 8:
+            drift_sample(r, fam[f].name, NULL, d->psi_max);
+            break;
+        case 9:
+            drift_sample(r, fam[f].name, NULL, (double)d->psi_overall);
+            break;
+        case 10:
+            drift_sample(r, fam[f].name, NULL, d->exceed_rate);
+            break;
+        case 11:
+            drift_sample(r, fam[f].name, NULL, (double)d->exceed_level);
+            break;
+        case 12:
+            drift_sample(r, fam[f].name, NULL, (double)d->level);
+            break;
         }
     }
 }
@@ -358,32 +401,37 @@ int veer__metrics_ready(veer__metrics *m, char *reason, size_t cap)
         return 0;
     }
     if (failed != NULL) {
-        snprintf(reason, cap, "task '%s' cannot be encoded against the loaded model; drop it or load a model "
-                              "that can", failed);
+        snprintf(reason, cap,
+                 "task '%s' cannot be encoded against the loaded model; drop it or load a model "
+                 "that can",
+                 failed);
         return 0;
     }
     if (pending != 0) {
         snprintf(reason, cap, "%u task(s) are being encoded", pending);
         return 0;
     }
-    snprintf(reason, cap, "model '%s' loaded; %u task(s) encoded", m->cfg.store->info->model_version,
-             veer__registry_count(reg));
+    snprintf(reason, cap, "model '%s' loaded; %u task(s) encoded",
+             m->cfg.store->info->model_version, veer__registry_count(reg));
     return 1;
 }
 
-void veer__metrics_render(veer__metrics *m, const veer__metrics_extra *extra, veer__http_response *r)
+void veer__metrics_render(veer__metrics *m, const veer__metrics_extra *extra,
+                          veer__http_response *r)
 {
     take_intervals(m);
     r->content_type = "text/plain; version=0.0.4; charset=utf-8";
     char reason[256];
     int ready = veer__metrics_ready(m, reason, sizeof reason);
-    family(r, "veer_info", "gauge", "Constant 1, labelled with veerd's version and the loaded model.");
+    family(r, "veer_info", "gauge",
+           "Constant 1, labelled with veerd's version and the loaded model.");
     veer__http_body_printf(r, "veer_info{version=\"");
     veer__metrics_label_value(r, m->cfg.version ? m->cfg.version : "");
     veer__http_body_printf(r, "\",model_version=\"");
     veer__metrics_label_value(r, m->cfg.store->info->model_version);
     veer__http_body_printf(r, "\",monitors=\"%s\"} 1\n", m->cfg.monitors_off ? "off" : "on");
-    family(r, "veer_ready", "gauge", "1 when the model is loaded and every task is encoded (as /readyz).");
+    family(r, "veer_ready", "gauge",
+           "1 when the model is loaded and every task is encoded (as /readyz).");
     sample1(r, "veer_ready", NULL, NULL, ready);
     render_counters(m, extra, r);
     render_channels(m, r);

@@ -47,7 +47,8 @@ void veer__metrics_destroy(veer__metrics *m); /* NULL allowed */
 void veer__metrics_tick(veer__metrics *m);
 
 /* Appends the whole exposition to `resp` (and sets its content type). Loop thread. */
-void veer__metrics_render(veer__metrics *m, const veer__metrics_extra *extra, veer__http_response *resp);
+void veer__metrics_render(veer__metrics *m, const veer__metrics_extra *extra,
+                          veer__http_response *resp);
 
 /* 1 when the service is ready (model loaded, no task waiting for or failing its encoding);
  * otherwise 0 with a sentence saying why in `reason`. Loop thread. */

@@ -36,7 +36,8 @@ static void on_tick(uv_timer_t *t)
         double window_s = (double)o->burst.window_ns * 1e-9;
         if (o->cfg.store->events != NULL)
             veer__events_deadline_burst(o->cfg.store->events, "", misses, window_s);
-        veer__log_warn("deadline: %u misses within %.1f s (controllers got fallback actions)", misses, window_s);
+        veer__log_warn("deadline: %u misses within %.1f s (controllers got fallback actions)",
+                       misses, window_s);
     }
     if (++o->ticks % METRICS_EVERY == 0)
         veer__metrics_tick(o->metrics);
@@ -54,10 +55,12 @@ static void handle(void *ctx, const char *path, veer__http_response *resp)
         char reason[256];
         if (!veer__metrics_ready(o->metrics, reason, sizeof reason))
             resp->status = 503;
-        veer__http_body_printf(resp, "%s: %s\n", resp->status == 200 ? "ready" : "not ready", reason);
+        veer__http_body_printf(resp, "%s: %s\n", resp->status == 200 ? "ready" : "not ready",
+                               reason);
     } else {
         resp->status = 404;
-        veer__http_body_printf(resp, "404 Not Found: veerd serves /metrics, /healthz and /readyz\n");
+        veer__http_body_printf(resp,
+                               "404 Not Found: veerd serves /metrics, /healthz and /readyz\n");
     }
 }
 
@@ -69,14 +72,17 @@ int veer__ops_start(const veer__ops_config *cfg, veer__ops **out, veer_error *er
     o->cfg = *cfg;
     veer__burst_init(&o->burst, cfg->burst_misses ? cfg->burst_misses : 10,
                      (uint64_t)(cfg->burst_window_ms ? cfg->burst_window_ms : 1000) * 1000000u);
-    veer__metrics_config mc = {
-        .store = cfg->store, .act = cfg->act, .version = cfg->version, .monitors_off = cfg->monitors_off};
+    veer__metrics_config mc = {.store = cfg->store,
+                               .act = cfg->act,
+                               .version = cfg->version,
+                               .monitors_off = cfg->monitors_off};
     if (veer__metrics_create(&mc, &o->metrics) != 0) {
         veer__free(o);
         return veer__error_set(err, VEER_ENOMEM, "--http", "no memory for the metrics' histograms");
     }
     if (cfg->http_address != NULL && cfg->http_address[0] != '\0') {
-        veer__http_config hc = {.loop = cfg->loop, .address = cfg->http_address, .handler = handle, .ctx = o};
+        veer__http_config hc = {
+            .loop = cfg->loop, .address = cfg->http_address, .handler = handle, .ctx = o};
         int rc = veer__http_start(&hc, &o->http, err);
         if (rc < 0) {
             veer__metrics_destroy(o->metrics);
@@ -91,7 +97,10 @@ int veer__ops_start(const veer__ops_config *cfg, veer__ops **out, veer_error *er
     return 0;
 }
 
-int veer__ops_http_port(const veer__ops *o) { return o != NULL && o->http != NULL ? veer__http_port(o->http) : -1; }
+int veer__ops_http_port(const veer__ops *o)
+{
+    return o != NULL && o->http != NULL ? veer__http_port(o->http) : -1;
+}
 
 static void on_timer_closed(uv_handle_t *handle)
 {

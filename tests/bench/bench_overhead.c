@@ -138,8 +138,8 @@ static int open_side(side *s, const char *act, const char *admin, const float *g
 }
 
 /* `count` acts; returns the number that came back with the policy's action. */
-static size_t run_acts(side *s, const float *states, uint32_t dim, size_t count, uint64_t *out, uint64_t *server,
-                       size_t *k)
+static size_t run_acts(side *s, const float *states, uint32_t dim, size_t count, uint64_t *out,
+                       uint64_t *server, size_t *k)
 {
     float action[256];
     veer_client_act_result r;
@@ -162,8 +162,9 @@ static size_t run_acts(side *s, const float *states, uint32_t dim, size_t count,
 int main(int argc, char **argv)
 {
     if (argc < 8) {
-        fprintf(stderr, "usage: bench_overhead ON_ACT ON_ADMIN ON_PID OFF_ACT OFF_ADMIN OFF_PID BUNDLE "
-                        "[ROUNDS] [PER_ROUND]\n");
+        fprintf(stderr,
+                "usage: bench_overhead ON_ACT ON_ADMIN ON_PID OFF_ACT OFF_ADMIN OFF_PID BUNDLE "
+                "[ROUNDS] [PER_ROUND]\n");
         return 2;
     }
     int rounds = argc > 8 ? atoi(argv[8]) : 20;
@@ -181,7 +182,8 @@ int main(int argc, char **argv)
     const veer_model_info *info = veer_bundle_info(bundle);
     uint32_t dim = info->state_dim;
     if (!info->has_stats || info->action_dim > 256) {
-        fprintf(stderr, "bench_overhead: the bundle needs training statistics and at most 256 actions\n");
+        fprintf(stderr,
+                "bench_overhead: the bundle needs training statistics and at most 256 actions\n");
         return 1;
     }
     /* States drawn around the training mean with the training standard deviations, so the drift
@@ -191,10 +193,12 @@ int main(int argc, char **argv)
         for (uint32_t j = 0; j < dim; j++) {
             double u = uniform01(), v = uniform01();
             double g = sqrt(-2.0 * log(u + 1e-300)) * cos(2.0 * M_PI * v);
-            states[i * dim + j] = (float)(info->state_mean[j] + g * sqrt(info->state_cov[(size_t)j * dim + j]));
+            states[i * dim + j] =
+                (float)(info->state_mean[j] + g * sqrt(info->state_cov[(size_t)j * dim + j]));
         }
     }
-    side sides[2] = {{.name = "monitors on", .pid = atol(argv[3])}, {.name = "monitors off", .pid = atol(argv[6])}};
+    side sides[2] = {{.name = "monitors on", .pid = atol(argv[3])},
+                     {.name = "monitors off", .pid = atol(argv[6])}};
     if (states == NULL || open_side(&sides[0], argv[1], argv[2], states, dim) != 0 ||
         open_side(&sides[1], argv[4], argv[5], states, dim) != 0)
         return 1;
@@ -208,7 +212,8 @@ int main(int argc, char **argv)
         sides[s].server = malloc((size_t)rounds * per_round * sizeof(uint64_t));
         if (sides[s].server == NULL)
             return 1;
-        run_acts(&sides[s], states, dim, 3000, NULL, NULL, &k); /* warm-up: caches, the running p99, the window */
+        run_acts(&sides[s], states, dim, 3000, NULL, NULL,
+                 &k); /* warm-up: caches, the running p99, the window */
     }
     uint64_t *scratch = malloc(per_round * sizeof(uint64_t));
     for (int r = 0; r < rounds && scratch != NULL; r++) {
@@ -226,9 +231,10 @@ int main(int argc, char **argv)
         }
     }
 
-    printf("bench_overhead: act round trip through the C client, veerd with monitors on vs off (same run)\n");
-    printf("  bundle %s: state %u, z %u; %d rounds x %zu acts per service, alternating\n", argv[7], dim,
-           info->z_dim, rounds, per_round);
+    printf("bench_overhead: act round trip through the C client, veerd with monitors on vs off "
+           "(same run)\n");
+    printf("  bundle %s: state %u, z %u; %d rounds x %zu acts per service, alternating\n", argv[7],
+           dim, info->z_dim, rounds, per_round);
     printf("  OpenBLAS kernel: %s (OPENBLAS_CORETYPE=%s)\n", veer_blas_kernel(),
            getenv("OPENBLAS_CORETYPE") ? getenv("OPENBLAS_CORETYPE") : "unset");
     printf("  CPUs: client ");
@@ -243,8 +249,8 @@ int main(int argc, char **argv)
         qsort(sides[s].rtt, sides[s].n, sizeof(uint64_t), cmp_u64);
         p50[s] = (double)pct(sides[s].rtt, sides[s].n, 50) / 1e3;
         p99[s] = (double)pct(sides[s].rtt, sides[s].n, 99) / 1e3;
-        printf("  %-13s acts %7zu   p50 %8.2f us   p90 %8.2f us   p99 %8.2f us\n", sides[s].name, sides[s].n, p50[s],
-               (double)pct(sides[s].rtt, sides[s].n, 90) / 1e3, p99[s]);
+        printf("  %-13s acts %7zu   p50 %8.2f us   p90 %8.2f us   p99 %8.2f us\n", sides[s].name,
+               sides[s].n, p50[s], (double)pct(sides[s].rtt, sides[s].n, 90) / 1e3, p99[s]);
     }
     /* veerd's own time: from taking the request off the socket to starting the reply (decode,
      * checks, drift monitor, policy), in whole microseconds, so the mean is the finer figure. */
@@ -255,12 +261,13 @@ int main(int argc, char **argv)
             sum += (double)sides[s].server[i];
         mean_server[s] = sides[s].n ? sum / (double)sides[s].n / 1e3 : NAN;
         qsort(sides[s].server, sides[s].n, sizeof(uint64_t), cmp_u64);
-        printf("  %-13s veerd's own time (server_us, 1 us resolution): mean %7.2f us   p50 %5.0f us   p99 %5.0f us\n",
+        printf("  %-13s veerd's own time (server_us, 1 us resolution): mean %7.2f us   p50 %5.0f "
+               "us   p99 %5.0f us\n",
                sides[s].name, mean_server[s], (double)pct(sides[s].server, sides[s].n, 50) / 1e3,
                (double)pct(sides[s].server, sides[s].n, 99) / 1e3);
     }
-    printf("  veerd's own time on/off: mean %.3f (%+.2f us per act)\n", mean_server[0] / mean_server[1],
-           mean_server[0] - mean_server[1]);
+    printf("  veerd's own time on/off: mean %.3f (%+.2f us per act)\n",
+           mean_server[0] / mean_server[1], mean_server[0] - mean_server[1]);
     double ratios[4096];
     int nr = 0;
     for (int r = 0; r < rounds && r < 4096; r++)

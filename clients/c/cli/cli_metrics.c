@@ -60,7 +60,8 @@ static int64_t now_ms(void)
 }
 
 /* Connects with a deadline; returns the socket or -1. */
-static int connect_to(const char *host, const char *port, int64_t deadline, char *why, size_t why_cap)
+static int connect_to(const char *host, const char *port, int64_t deadline, char *why,
+                      size_t why_cap)
 {
     struct addrinfo hints = {.ai_family = AF_UNSPEC, .ai_socktype = SOCK_STREAM}, *res = NULL;
     int rc = getaddrinfo(host, port, &hints, &res);
@@ -83,8 +84,8 @@ static int connect_to(const char *host, const char *port, int64_t deadline, char
         int wait = (int)(deadline - now_ms());
         int err = 0;
         socklen_t len = sizeof err;
-        if (wait <= 0 || poll(&pfd, 1, wait) != 1 || getsockopt(fd, SOL_SOCKET, SO_ERROR, &err, &len) != 0 ||
-            err != 0) {
+        if (wait <= 0 || poll(&pfd, 1, wait) != 1 ||
+            getsockopt(fd, SOL_SOCKET, SO_ERROR, &err, &len) != 0 || err != 0) {
             snprintf(why, why_cap, "cannot connect to %s:%s: %s", host, port,
                      err ? strerror(err) : "no answer in time");
             close(fd);
@@ -95,7 +96,8 @@ static int connect_to(const char *host, const char *port, int64_t deadline, char
     return fd;
 }
 
-int veer_cli_metrics_fetch(const char *address, uint32_t timeout_ms, char **body, char *why, size_t why_cap)
+int veer_cli_metrics_fetch(const char *address, uint32_t timeout_ms, char **body, char *why,
+                           size_t why_cap)
 {
     *body = NULL;
     if (strncmp(address, "http://", 7) == 0)
@@ -122,8 +124,10 @@ int veer_cli_metrics_fetch(const char *address, uint32_t timeout_ms, char **body
     if (fd < 0)
         return VEER_CLI_UNREACHABLE;
     char req[512];
-    int rl = snprintf(req, sizeof req, "GET /metrics HTTP/1.1\r\nHost: %s:%s\r\nAccept: text/plain\r\n"
-                                       "Connection: close\r\n\r\n", host, port);
+    int rl = snprintf(req, sizeof req,
+                      "GET /metrics HTTP/1.1\r\nHost: %s:%s\r\nAccept: text/plain\r\n"
+                      "Connection: close\r\n\r\n",
+                      host, port);
     if (send(fd, req, (size_t)rl, MSG_NOSIGNAL) != rl) {
         snprintf(why, why_cap, "cannot send to %s: %s", address, strerror(errno));
         close(fd);
@@ -150,7 +154,8 @@ int veer_cli_metrics_fetch(const char *address, uint32_t timeout_ms, char **body
             continue;
         if (n < 0)
             break;
-        size_t used = http_parser_execute(&parser, &settings, buf, (size_t)n); /* n == 0: end of stream */
+        size_t used =
+            http_parser_execute(&parser, &settings, buf, (size_t)n); /* n == 0: end of stream */
         if (f.oom || used != (size_t)n || HTTP_PARSER_ERRNO(&parser) != HPE_OK) {
             snprintf(why, why_cap, "%s sent a malformed HTTP reply (%s)", address,
                      f.oom ? "out of memory" : http_errno_description(HTTP_PARSER_ERRNO(&parser)));
@@ -167,7 +172,8 @@ int veer_cli_metrics_fetch(const char *address, uint32_t timeout_ms, char **body
         return f.body ? 0 : VEER_CLI_UNREACHABLE;
     }
     if (f.complete) {
-        snprintf(why, why_cap, "%s answered HTTP %u: %.200s", address, parser.status_code, f.body ? f.body : "");
+        snprintf(why, why_cap, "%s answered HTTP %u: %.200s", address, parser.status_code,
+                 f.body ? f.body : "");
         rc = VEER_CLI_REFUSED;
     }
     veer__free(f.body);
@@ -202,7 +208,8 @@ static char *copy(const char *s, size_t n)
 
 static int is_name_char(char c, int first)
 {
-    return (c >= 'a' && c <= 'z') || (c >= 'A' && c <= 'Z') || c == '_' || c == ':' || (!first && c >= '0' && c <= '9');
+    return (c >= 'a' && c <= 'z') || (c >= 'A' && c <= 'Z') || c == '_' || c == ':' ||
+           (!first && c >= '0' && c <= '9');
 }
 
 /* Parses one sample line into *s; returns NULL or the reason. */
@@ -330,11 +337,12 @@ static int matches(const veer_cli_sample *s, const char *name, const char *key, 
     return v != NULL && strcmp(v, value) == 0;
 }
 
-int veer_cli_metrics_get2(const veer_cli_metrics *m, const char *name, const char *k1, const char *v1,
-                          const char *k2, const char *v2, double *out)
+int veer_cli_metrics_get2(const veer_cli_metrics *m, const char *name, const char *k1,
+                          const char *v1, const char *k2, const char *v2, double *out)
 {
     for (size_t i = 0; i < m->n; i++) {
-        if (matches(&m->samples[i], name, k1, v1) && (k2 == NULL || matches(&m->samples[i], name, k2, v2))) {
+        if (matches(&m->samples[i], name, k1, v1) &&
+            (k2 == NULL || matches(&m->samples[i], name, k2, v2))) {
             *out = m->samples[i].value;
             return 1;
         }
@@ -342,14 +350,14 @@ int veer_cli_metrics_get2(const veer_cli_metrics *m, const char *name, const cha
     return 0;
 }
 
-int veer_cli_metrics_get(const veer_cli_metrics *m, const char *name, const char *key, const char *value,
-                         double *out)
+int veer_cli_metrics_get(const veer_cli_metrics *m, const char *name, const char *key,
+                         const char *value, double *out)
 {
     return veer_cli_metrics_get2(m, name, key, value, NULL, NULL, out);
 }
 
-size_t veer_cli_metrics_buckets(const veer_cli_metrics *m, const char *name, const char *key, const char *value,
-                                double *le, double *cumulative, size_t cap)
+size_t veer_cli_metrics_buckets(const veer_cli_metrics *m, const char *name, const char *key,
+                                const char *value, double *le, double *cumulative, size_t cap)
 {
     char bucket[160];
     snprintf(bucket, sizeof bucket, "%s_bucket", name);
@@ -385,4 +393,3 @@ void veer_cli_duration(double seconds, char *out, size_t cap)
     else
         snprintf(out, cap, "%.2fs", seconds);
 }
-

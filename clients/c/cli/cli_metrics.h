@@ -37,7 +37,8 @@ typedef struct veer_cli_metrics {
  * NUL-terminated copy of the response body (the caller frees it with veer__free) and 0 is returned.
  * Otherwise a VEER_CLI_* exit code (unreachable: no connection or no reply within `timeout_ms`;
  * refused: an HTTP status other than 200) with the reason in `why`. */
-int veer_cli_metrics_fetch(const char *address, uint32_t timeout_ms, char **body, char *why, size_t why_cap);
+int veer_cli_metrics_fetch(const char *address, uint32_t timeout_ms, char **body, char *why,
+                           size_t why_cap);
 
 /* Parses exposition text into `out` (zeroed by the caller or freed before). Comment lines are
  * skipped. Returns 0, or -1 with the line number and reason in `why` (out is then freed). */
@@ -49,17 +50,17 @@ const char *veer_cli_sample_label(const veer_cli_sample *s, const char *key);
 
 /* The first sample called `name` whose label `key` equals `value` (key NULL: any). Returns 1 and
  * sets *out when found, else 0. */
-int veer_cli_metrics_get(const veer_cli_metrics *m, const char *name, const char *key, const char *value,
-                         double *out);
+int veer_cli_metrics_get(const veer_cli_metrics *m, const char *name, const char *key,
+                         const char *value, double *out);
 
 /* The same with two labels. */
-int veer_cli_metrics_get2(const veer_cli_metrics *m, const char *name, const char *k1, const char *v1,
-                          const char *k2, const char *v2, double *out);
+int veer_cli_metrics_get2(const veer_cli_metrics *m, const char *name, const char *k1,
+                          const char *v1, const char *k2, const char *v2, double *out);
 
 /* Bucket bounds and cumulative counts of histogram `name` (without "_bucket") for samples whose
  * label `key` is `value`, sorted by bound; +Inf last. Up to `cap`; returns how many. */
-size_t veer_cli_metrics_buckets(const veer_cli_metrics *m, const char *name, const char *key, const char *value,
-                                double *le, double *cumulative, size_t cap);
+size_t veer_cli_metrics_buckets(const veer_cli_metrics *m, const char *name, const char *key,
+                                const char *value, double *le, double *cumulative, size_t cap);
 
 /* A duration in seconds as text with a unit: "850ns", "12.3us", "1.20ms", "1.50s"; "inf" for +Inf
  * and "-" for NaN. */

@@ -131,14 +131,16 @@ static int load_recording(const char *path, recording *r, char *why, size_t cap)
     int rc = 0;
     char *p = text;
     if (strncmp(p, FRAME_MARK, strlen(FRAME_MARK)) != 0) {
-        snprintf(why, cap, "'%s' is not a veer report recording (it must start with '%s')", path, FRAME_MARK);
+        snprintf(why, cap, "'%s' is not a veer report recording (it must start with '%s')", path,
+                 FRAME_MARK);
         rc = -1;
     }
     while (rc == 0 && p != NULL && *p) {
         char *end = NULL;
         long long ms = strtoll(p + strlen(FRAME_MARK), &end, 10);
         if (end == p + strlen(FRAME_MARK) || (*end != '\n' && *end != '\0')) {
-            snprintf(why, cap, "'%s': frame %zu has no time after '%s'", path, r->n + 1, FRAME_MARK);
+            snprintf(why, cap, "'%s': frame %zu has no time after '%s'", path, r->n + 1,
+                     FRAME_MARK);
             rc = -1;
             break;
         }
@@ -177,11 +179,20 @@ static void esc(FILE *out, const char *s)
 {
     for (; *s; s++) {
         switch (*s) {
-        case '&': fputs("&amp;", out); break;
-        case '<': fputs("&lt;", out); break;
-        case '>': fputs("&gt;", out); break;
-        case '"': fputs("&quot;", out); break;
-        default: fputc(*s, out);
+        case '&':
+            fputs("&amp;", out);
+            break;
+        case '<':
+            fputs("&lt;", out);
+            break;
+        case '>':
+            fputs("&gt;", out);
+            break;
+        case '"':
+            fputs("&quot;", out);
+            break;
+        default:
+            fputc(*s, out);
         }
     }
 }
@@ -195,7 +206,8 @@ static void text(FILE *out, double x, double y, const char *anchor, int size, co
     va_start(ap, fmt);
     vsnprintf(buf, sizeof buf, fmt, ap);
     va_end(ap);
-    fprintf(out, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"%s\" font-size=\"%d\">", x, y, anchor, size);
+    fprintf(out, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"%s\" font-size=\"%d\">", x, y, anchor,
+            size);
     esc(out, buf);
     fputs("</text>\n", out);
 }
@@ -212,7 +224,10 @@ typedef struct panel {
     double top, ymin, ymax, tmax;
 } panel;
 
-static double px(const panel *p, double t) { return LEFT + (RIGHT - LEFT) * (p->tmax > 0 ? t / p->tmax : 0.5); }
+static double px(const panel *p, double t)
+{
+    return LEFT + (RIGHT - LEFT) * (p->tmax > 0 ? t / p->tmax : 0.5);
+}
 static double py(const panel *p, double v)
 {
     double f = p->ymax > p->ymin ? (v - p->ymin) / (p->ymax - p->ymin) : 0;
@@ -220,15 +235,19 @@ static double py(const panel *p, double v)
     return p->top + PANEL_H * (1 - f);
 }
 
-static void panel_frame(FILE *out, const panel *p, const char *title, const char *unit, double scale)
+static void panel_frame(FILE *out, const panel *p, const char *title, const char *unit,
+                        double scale)
 {
     text(out, LEFT, p->top - 10, "start", 14, "%s", title);
-    fprintf(out, "<rect x=\"%d\" y=\"%.1f\" width=\"%d\" height=\"%d\" fill=\"#fafafa\" stroke=\"#999\"/>\n", LEFT,
-            p->top, RIGHT - LEFT, PANEL_H);
+    fprintf(
+        out,
+        "<rect x=\"%d\" y=\"%.1f\" width=\"%d\" height=\"%d\" fill=\"#fafafa\" stroke=\"#999\"/>\n",
+        LEFT, p->top, RIGHT - LEFT, PANEL_H);
     for (int k = 0; k <= 4; k++) {
         double v = p->ymin + (p->ymax - p->ymin) * k / 4.0;
         double y = py(p, v);
-        fprintf(out, "<line x1=\"%d\" y1=\"%.1f\" x2=\"%d\" y2=\"%.1f\" stroke=\"#e4e4e4\"/>\n", LEFT, y, RIGHT, y);
+        fprintf(out, "<line x1=\"%d\" y1=\"%.1f\" x2=\"%d\" y2=\"%.1f\" stroke=\"#e4e4e4\"/>\n",
+                LEFT, y, RIGHT, y);
         text(out, LEFT - 6, y + 4, "end", 10, "%.3g%s", v * scale, unit);
     }
     for (int k = 0; k <= 6; k++) {
@@ -237,11 +256,11 @@ static void panel_frame(FILE *out, const panel *p, const char *title, const char
     }
 }
 
-static void polyline(FILE *out, const panel *p, const double *t, const double *v, size_t n, const char *color,
-                     const char *dash)
+static void polyline(FILE *out, const panel *p, const double *t, const double *v, size_t n,
+                     const char *color, const char *dash)
 {
-    fprintf(out, "<polyline fill=\"none\" stroke=\"%s\" stroke-width=\"1.5\"%s%s%s points=\"", color,
-            dash ? " stroke-dasharray=\"" : "", dash ? dash : "", dash ? "\"" : "");
+    fprintf(out, "<polyline fill=\"none\" stroke=\"%s\" stroke-width=\"1.5\"%s%s%s points=\"",
+            color, dash ? " stroke-dasharray=\"" : "", dash ? dash : "", dash ? "\"" : "");
     for (size_t i = 0; i < n; i++)
         if (isfinite(v[i]))
             fprintf(out, "%.1f,%.1f ", px(p, t[i]), py(p, v[i]));
@@ -279,9 +298,10 @@ static void latency_histograms(FILE *out, const recording *r, double top)
     double w = (RIGHT - LEFT - 3 * 30) / 4.0;
     for (size_t s = 0; s < 4; s++) {
         double le[MAX_BUCKETS], a[MAX_BUCKETS], ble[MAX_BUCKETS], b[MAX_BUCKETS] = {0};
-        size_t n = veer_cli_metrics_buckets(last, "veer_act_stage_seconds", "stage", STAGES[s], le, a, MAX_BUCKETS);
-        size_t nb = r->n > 1 ? veer_cli_metrics_buckets(first, "veer_act_stage_seconds", "stage", STAGES[s], ble, b,
-                                                        MAX_BUCKETS)
+        size_t n = veer_cli_metrics_buckets(last, "veer_act_stage_seconds", "stage", STAGES[s], le,
+                                            a, MAX_BUCKETS);
+        size_t nb = r->n > 1 ? veer_cli_metrics_buckets(first, "veer_act_stage_seconds", "stage",
+                                                        STAGES[s], ble, b, MAX_BUCKETS)
                              : 0;
         double cum[MAX_BUCKETS], cnt[MAX_BUCKETS], top_count = 0;
         size_t lo = n, hi = 0;
@@ -297,7 +317,9 @@ static void latency_histograms(FILE *out, const recording *r, double top)
         double x0 = LEFT + s * (w + 30);
         fprintf(out, "<g id=\"latency-%s\">\n", STAGES[s]);
         text(out, x0, top - 8, "start", 13, "%s", STAGES[s]);
-        fprintf(out, "<rect x=\"%.1f\" y=\"%.1f\" width=\"%.1f\" height=\"%d\" fill=\"#fafafa\" stroke=\"#999\"/>\n",
+        fprintf(out,
+                "<rect x=\"%.1f\" y=\"%.1f\" width=\"%.1f\" height=\"%d\" fill=\"#fafafa\" "
+                "stroke=\"#999\"/>\n",
                 x0, top, w, PANEL_H);
         if (lo == n) {
             text(out, x0 + w / 2, top + PANEL_H / 2.0, "middle", 11, "no requests recorded");
@@ -309,8 +331,9 @@ static void latency_histograms(FILE *out, const recording *r, double top)
                 double bx = x0 + (double)(i - lo) * bw;
                 char label[32];
                 veer_cli_duration(le[i], label, sizeof label);
-                fprintf(out, "<rect x=\"%.1f\" y=\"%.1f\" width=\"%.1f\" height=\"%.1f\" fill=\"%s\">"
-                             "<title>le %s: %.0f</title></rect>\n",
+                fprintf(out,
+                        "<rect x=\"%.1f\" y=\"%.1f\" width=\"%.1f\" height=\"%.1f\" fill=\"%s\">"
+                        "<title>le %s: %.0f</title></rect>\n",
                         bx + 1, top + PANEL_H - h, bw - 2, h, COLORS[s], label, cnt[i]);
                 if (bars <= 8 || (i - lo) % 2 == 0)
                     text(out, bx + bw / 2, top + PANEL_H + 12, "middle", 8, "%s", label);
@@ -318,15 +341,16 @@ static void latency_histograms(FILE *out, const recording *r, double top)
             char p50[32], p99[32];
             veer_cli_duration(bucket_quantile(le, cum, n, 0.5), p50, sizeof p50);
             veer_cli_duration(bucket_quantile(le, cum, n, 0.99), p99, sizeof p99);
-            text(out, x0 + w - 4, top + 14, "end", 10, "n %.0f  p50 ~%s  p99 ~%s", cum[n - 1], p50, p99);
+            text(out, x0 + w - 4, top + 14, "end", 10, "n %.0f  p50 ~%s  p99 ~%s", cum[n - 1], p50,
+                 p99);
         }
         fprintf(out, "</g>\n");
     }
     fprintf(out, "</g>\n");
 }
 
-static void series(const recording *r, const char *name, const char *k1, const char *v1, const char *k2,
-                   const char *v2, double *t, double *v)
+static void series(const recording *r, const char *name, const char *k1, const char *v1,
+                   const char *k2, const char *v2, double *t, double *v)
 {
     for (size_t i = 0; i < r->n; i++) {
         t[i] = r->f[i].t;
@@ -344,7 +368,8 @@ static double max_of(const double *v, size_t n, double floor_value)
     return m;
 }
 
-static void latency_over_time(FILE *out, const recording *r, double *t, double *v, double top, double tmax)
+static void latency_over_time(FILE *out, const recording *r, double *t, double *v, double top,
+                              double tmax)
 {
     double *p99 = veer__calloc(r->n, sizeof *p99);
     if (p99 == NULL)
@@ -353,7 +378,9 @@ static void latency_over_time(FILE *out, const recording *r, double *t, double *
     series(r, "veer_act_stage_recent_seconds", "stage", "total", "quantile", "0.99", t, p99);
     panel p = {.top = top, .ymin = 0, .ymax = max_of(p99, r->n, 1e-6) * 1.1, .tmax = tmax};
     fprintf(out, "<g id=\"latency-over-time\">\n");
-    panel_frame(out, &p, "Total act time over the last 10 s at each scrape: p50 (solid), p99 (dashed)", "us", 1e6);
+    panel_frame(out, &p,
+                "Total act time over the last 10 s at each scrape: p50 (solid), p99 (dashed)", "us",
+                1e6);
     polyline(out, &p, t, v, r->n, COLORS[0], NULL);
     polyline(out, &p, t, p99, r->n, COLORS[1], "6,3");
     fprintf(out, "</g>\n");
@@ -366,7 +393,8 @@ static void act_rate(FILE *out, const recording *r, double *t, double *v, double
     for (size_t i = 0; i < r->n; i++) {
         double acts = metric(&r->f[i].m, "veer_acts_total", NULL, NULL);
         t[i] = r->f[i].t;
-        v[i] = i > 0 && r->f[i].t > r->f[i - 1].t ? (acts - prev) / (r->f[i].t - r->f[i - 1].t) : NAN;
+        v[i] =
+            i > 0 && r->f[i].t > r->f[i - 1].t ? (acts - prev) / (r->f[i].t - r->f[i - 1].t) : NAN;
         prev = acts;
     }
     panel p = {.top = top, .ymin = 0, .ymax = max_of(v, r->n, 1) * 1.1, .tmax = tmax};
@@ -387,7 +415,8 @@ static int by_peak_desc(const void *a, const void *b)
     return (x < y) - (x > y);
 }
 
-static void drift_over_time(FILE *out, const recording *r, double *t, double *v, double top, double tmax)
+static void drift_over_time(FILE *out, const recording *r, double *t, double *v, double top,
+                            double tmax)
 {
     const veer_cli_metrics *last = &r->f[r->n - 1].m;
     size_t nf = 0;
@@ -408,33 +437,43 @@ static void drift_over_time(FILE *out, const recording *r, double *t, double *v,
         k++;
     }
     qsort(fs, k, sizeof *fs, by_peak_desc);
-    panel_frame(out, &p, "Drift: PSI per feature (the highest ones), watch at 0.10 and alarm at 0.25", "", 1);
+    panel_frame(out, &p,
+                "Drift: PSI per feature (the highest ones), watch at 0.10 and alarm at 0.25", "",
+                1);
     if (k == 0)
         text(out, (LEFT + RIGHT) / 2.0, top + PANEL_H / 2.0, "middle", 12,
              "no drift statistics (bundle without training statistics, or veerd --monitors 0)");
     for (size_t lvl = 0; lvl < 2; lvl++) {
         double y = py(&p, lvl ? 0.25 : 0.10);
-        fprintf(out, "<line x1=\"%d\" y1=\"%.1f\" x2=\"%d\" y2=\"%.1f\" stroke=\"%s\" stroke-dasharray=\"4,4\"/>\n",
+        fprintf(out,
+                "<line x1=\"%d\" y1=\"%.1f\" x2=\"%d\" y2=\"%.1f\" stroke=\"%s\" "
+                "stroke-dasharray=\"4,4\"/>\n",
                 LEFT, y, RIGHT, y, lvl ? "#d62728" : "#e0a000");
     }
     for (size_t i = 0; i < k && i < MAX_LINES; i++) {
         series(r, "veer_drift_psi", "feature", fs[i].name, NULL, NULL, t, v);
         polyline(out, &p, t, v, r->n, COLORS[i % 8], NULL);
-        fprintf(out, "<rect x=\"%d\" y=\"%.1f\" width=\"10\" height=\"10\" fill=\"%s\"/>\n", RIGHT + 8,
-                top + 14.0 * (double)i, COLORS[i % 8]);
-        text(out, RIGHT + 22, top + 9 + 14.0 * (double)i, "start", 10, "%s (peak %.3f)", fs[i].name, fs[i].peak);
+        fprintf(out, "<rect x=\"%d\" y=\"%.1f\" width=\"10\" height=\"10\" fill=\"%s\"/>\n",
+                RIGHT + 8, top + 14.0 * (double)i, COLORS[i % 8]);
+        text(out, RIGHT + 22, top + 9 + 14.0 * (double)i, "start", 10, "%s (peak %.3f)", fs[i].name,
+             fs[i].peak);
     }
     fprintf(out, "</g>\n");
     veer__free(fs);
 
     series(r, "veer_drift_exceed_rate", "scope", "service", NULL, NULL, t, v);
-    panel e = {.top = top + PANEL_H + GAP, .ymin = 0, .ymax = max_of(v, r->n, 0.04) * 1.1, .tmax = tmax};
+    panel e = {
+        .top = top + PANEL_H + GAP, .ymin = 0, .ymax = max_of(v, r->n, 0.04) * 1.1, .tmax = tmax};
     fprintf(out, "<g id=\"exceedance-over-time\">\n");
-    panel_frame(out, &e, "Share of window states beyond the training p99 distance (about 1 % without drift; "
-                         "alarm at 3 %)", "%", 100);
+    panel_frame(out, &e,
+                "Share of window states beyond the training p99 distance (about 1 % without drift; "
+                "alarm at 3 %)",
+                "%", 100);
     for (size_t lvl = 0; lvl < 2; lvl++) {
         double y = py(&e, lvl ? 0.03 : 0.01);
-        fprintf(out, "<line x1=\"%d\" y1=\"%.1f\" x2=\"%d\" y2=\"%.1f\" stroke=\"%s\" stroke-dasharray=\"4,4\"/>\n",
+        fprintf(out,
+                "<line x1=\"%d\" y1=\"%.1f\" x2=\"%d\" y2=\"%.1f\" stroke=\"%s\" "
+                "stroke-dasharray=\"4,4\"/>\n",
                 LEFT, y, RIGHT, y, lvl ? "#d62728" : "#999");
     }
     polyline(out, &e, t, v, r->n, COLORS[3], NULL);
@@ -453,8 +492,10 @@ static void switch_marks(FILE *out, const recording *r, double top, double botto
         if (!(now > before))
             continue;
         double x = px(&p, r->f[i].t);
-        fprintf(out, "<line x1=\"%.1f\" y1=\"%.1f\" x2=\"%.1f\" y2=\"%.1f\" stroke=\"#444\" stroke-width=\"1\" "
-                     "stroke-dasharray=\"2,3\"/>\n",
+        fprintf(out,
+                "<line x1=\"%.1f\" y1=\"%.1f\" x2=\"%.1f\" y2=\"%.1f\" stroke=\"#444\" "
+                "stroke-width=\"1\" "
+                "stroke-dasharray=\"2,3\"/>\n",
                 x, top, x, bottom);
         char label[256] = "";
         size_t used = 0;
@@ -463,20 +504,23 @@ static void switch_marks(FILE *out, const recording *r, double top, double botto
             if (strcmp(m->samples[k].name, "veer_channel_switches_total") != 0)
                 continue;
             const char *ch = veer_cli_sample_label(&m->samples[k], "channel");
-            double was = ch ? metric(&r->f[i - 1].m, "veer_channel_switches_total", "channel", ch) : NAN;
+            double was =
+                ch ? metric(&r->f[i - 1].m, "veer_channel_switches_total", "channel", ch) : NAN;
             if (ch == NULL || (isfinite(was) && !(m->samples[k].value > was)))
                 continue;
             const char *task = "";
             for (size_t j = 0; j < m->n; j++) {
                 const char *c2 = veer_cli_sample_label(&m->samples[j], "channel");
-                if (strcmp(m->samples[j].name, "veer_channel_task") == 0 && c2 && strcmp(c2, ch) == 0)
+                if (strcmp(m->samples[j].name, "veer_channel_task") == 0 && c2 &&
+                    strcmp(c2, ch) == 0)
                     task = veer_cli_sample_label(&m->samples[j], "task");
             }
-            used += (size_t)snprintf(label + used, sizeof label - used, "%s%s -> %s", used ? ", " : "", ch,
-                                     task ? task : "");
+            used += (size_t)snprintf(label + used, sizeof label - used, "%s%s -> %s",
+                                     used ? ", " : "", ch, task ? task : "");
         }
         fprintf(out, "<g class=\"switch\">");
-        text(out, x + 3, top + 10 + 12.0 * (marks % 4), "start", 10, "switch +%.0f: %s", now - before, label);
+        text(out, x + 3, top + 10 + 12.0 * (marks % 4), "start", 10, "switch +%.0f: %s",
+             now - before, label);
         fprintf(out, "</g>\n");
         marks++;
     }
@@ -501,10 +545,13 @@ static int write_page(const char *path, const recording *r, const char *source)
     double tmax = r->f[r->n - 1].t;
     const int hist_top = 110, over_top = hist_top + PANEL_H + GAP + 10;
     const int page_h = over_top + 4 * (PANEL_H + GAP) + 40;
-    fprintf(out, "<?xml version=\"1.0\" encoding=\"UTF-8\"?>\n"
-                 "<svg xmlns=\"http://www.w3.org/2000/svg\" width=\"%d\" height=\"%d\" viewBox=\"0 0 %d %d\" "
-                 "font-family=\"sans-serif\">\n<rect width=\"100%%\" height=\"100%%\" fill=\"white\"/>\n",
-            PAGE_W + 140, page_h, PAGE_W + 140, page_h);
+    fprintf(
+        out,
+        "<?xml version=\"1.0\" encoding=\"UTF-8\"?>\n"
+        "<svg xmlns=\"http://www.w3.org/2000/svg\" width=\"%d\" height=\"%d\" viewBox=\"0 0 %d "
+        "%d\" "
+        "font-family=\"sans-serif\">\n<rect width=\"100%%\" height=\"100%%\" fill=\"white\"/>\n",
+        PAGE_W + 140, page_h, PAGE_W + 140, page_h);
     const char *version = "?", *model = "?";
     const veer_cli_metrics *last = &r->f[r->n - 1].m;
     for (size_t i = 0; i < last->n; i++) {
@@ -522,8 +569,10 @@ static int write_page(const char *path, const recording *r, const char *source)
     strftime(when, sizeof when, "%Y-%m-%d %H:%M:%S UTC", &tm);
     fprintf(out, "<g id=\"header\">\n");
     text(out, LEFT, 36, "start", 22, "veer report: model %s, veerd %s", model, version);
-    text(out, LEFT, 60, "start", 12, "%zu scrapes from %s over %.0f s (%s). Switch times are known to one scrape "
-                                     "interval.", r->n, when, tmax, source);
+    text(out, LEFT, 60, "start", 12,
+         "%zu scrapes from %s over %.0f s (%s). Switch times are known to one scrape "
+         "interval.",
+         r->n, when, tmax, source);
     fprintf(out, "</g>\n");
     latency_histograms(out, r, hist_top);
     latency_over_time(out, r, t, v, over_top, tmax);
@@ -548,8 +597,8 @@ static void on_sigint(int sig)
 }
 
 /* Scrapes `seconds` long every `interval`, keeping each scrape (and writing it to `record`). */
-static int record_frames(const char *address, double seconds, double interval, const char *record_path,
-                         recording *r)
+static int record_frames(const char *address, double seconds, double interval,
+                         const char *record_path, recording *r)
 {
     FILE *rec = NULL;
     if (record_path != NULL && (rec = fopen(record_path, "w")) == NULL) {
@@ -565,13 +614,15 @@ static int record_frames(const char *address, double seconds, double interval, c
         if ((double)(due - start) > seconds * 1000 + 1)
             break;
         for (long long now = unix_ms_now(); now < due && !interrupted; now = unix_ms_now()) {
-            struct timespec ts = {.tv_sec = (due - now) / 1000, .tv_nsec = ((due - now) % 1000) * 1000000};
+            struct timespec ts = {.tv_sec = (due - now) / 1000,
+                                  .tv_nsec = ((due - now) % 1000) * 1000000};
             nanosleep(&ts, NULL);
         }
         char *body = NULL;
         long long at = unix_ms_now();
-        rc = veer_cli_metrics_fetch(address, (uint32_t)(interval * 1000 > 2000 ? interval * 1000 : 2000), &body,
-                                    why, sizeof why);
+        rc = veer_cli_metrics_fetch(address,
+                                    (uint32_t)(interval * 1000 > 2000 ? interval * 1000 : 2000),
+                                    &body, why, sizeof why);
         if (rc != 0) {
             fprintf(stderr, "veer report: %s%s\n", why,
                     r->n ? "; the page shows the scrapes made before" : "");
@@ -586,7 +637,8 @@ static int record_frames(const char *address, double seconds, double interval, c
             break;
         }
         if (rec != NULL)
-            fprintf(rec, FRAME_MARK "%lld\n%s%s", at, body, body[0] && body[strlen(body) - 1] != '\n' ? "\n" : "");
+            fprintf(rec, FRAME_MARK "%lld\n%s%s", at, body,
+                    body[0] && body[strlen(body) - 1] != '\n' ? "\n" : "");
         veer__free(body);
     }
     if (rec != NULL && fclose(rec) != 0) {
@@ -602,7 +654,8 @@ static int parse_seconds(const char *flag, const char *v, double lo, double hi, 
     char *end = NULL;
     double x = strtod(v, &end);
     if (*end != '\0' || !(x >= lo && x <= hi)) {
-        fprintf(stderr, "veer report: %s: expected seconds from %g to %g, got '%s'\n", flag, lo, hi, v);
+        fprintf(stderr, "veer report: %s: expected seconds from %g to %g, got '%s'\n", flag, lo, hi,
+                v);
         return VEER_CLI_USAGE;
     }
     *out = x;
@@ -644,7 +697,8 @@ static int run(int argc, char **argv)
         return VEER_CLI_USAGE;
     }
     if (from != NULL && record != NULL) {
-        fprintf(stderr, "veer report: --from reads a recording; --record writes one: give one of them\n");
+        fprintf(stderr,
+                "veer report: --from reads a recording; --record writes one: give one of them\n");
         return VEER_CLI_USAGE;
     }
     recording r = {0};
@@ -660,9 +714,11 @@ static int run(int argc, char **argv)
     if (rc == 0)
         rc = write_page(out, &r, from ? from : address);
     if (rc == 0)
-        printf("veer report: %zu scrapes over %.0f s written to %s\n", r.n, r.n ? r.f[r.n - 1].t : 0.0, out);
+        printf("veer report: %zu scrapes over %.0f s written to %s\n", r.n,
+               r.n ? r.f[r.n - 1].t : 0.0, out);
     recording_free(&r);
     return rc;
 }
 
-const veer_cli_command veer_cli_cmd_report = {"report", "record veerd's metrics and write an SVG report", run};
+const veer_cli_command veer_cli_cmd_report = {
+    "report", "record veerd's metrics and write an SVG report", run};

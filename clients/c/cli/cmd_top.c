@@ -74,7 +74,10 @@ static void put(screen *s, const char *fmt, ...)
 }
 
 /* ANSI SGR: 1 bold, 31 red, 33 yellow, 7 reverse; "" when colour is off. */
-static const char *sgr(const screen *s, const char *code) { return s->color ? code : ""; }
+static const char *sgr(const screen *s, const char *code)
+{
+    return s->color ? code : "";
+}
 #define RESET(s) sgr(s, "\033[0m")
 
 static double get(const veer_cli_metrics *m, const char *name, const char *key, const char *value)
@@ -84,14 +87,17 @@ static double get(const veer_cli_metrics *m, const char *name, const char *key, 
     return v;
 }
 
-static const char *level_name(double level) { return level >= 2 ? "ALARM" : level >= 1 ? "watch" : "ok"; }
+static const char *level_name(double level)
+{
+    return level >= 2 ? "ALARM" : level >= 1 ? "watch" : "ok";
+}
 static const char *level_color(const screen *s, double level)
 {
     return level >= 2 ? sgr(s, "\033[1;31m") : level >= 1 ? sgr(s, "\033[33m") : "";
 }
 
-static void render_header(screen *s, const char *address, const veer_cli_metrics *cur, const veer_cli_metrics *prev,
-                          double dt)
+static void render_header(screen *s, const char *address, const veer_cli_metrics *cur,
+                          const veer_cli_metrics *prev, double dt)
 {
     const char *version = "?", *model = "?", *monitors = "?";
     for (size_t i = 0; i < cur->n; i++) {
@@ -109,9 +115,10 @@ static void render_header(screen *s, const char *address, const veer_cli_metrics
     struct tm tm;
     localtime_r(&now, &tm);
     double ready = get(cur, "veer_ready", NULL, NULL);
-    put(s, "%sveer top%s  %s  veerd %s  model %s  monitors %s  %s%s%s  %02d:%02d:%02d\n", sgr(s, "\033[1m"),
-        RESET(s), address, version, model, monitors, ready == 1 ? "" : sgr(s, "\033[1;31m"),
-        ready == 1 ? "ready" : "NOT READY", RESET(s), tm.tm_hour, tm.tm_min, tm.tm_sec);
+    put(s, "%sveer top%s  %s  veerd %s  model %s  monitors %s  %s%s%s  %02d:%02d:%02d\n",
+        sgr(s, "\033[1m"), RESET(s), address, version, model, monitors,
+        ready == 1 ? "" : sgr(s, "\033[1;31m"), ready == 1 ? "ready" : "NOT READY", RESET(s),
+        tm.tm_hour, tm.tm_min, tm.tm_sec);
     double acts = get(cur, "veer_acts_total", NULL, NULL);
     double rate = prev ? (acts - get(prev, "veer_acts_total", NULL, NULL)) / dt : NAN;
     double errors = 0;
@@ -119,23 +126,28 @@ static void render_header(screen *s, const char *address, const veer_cli_metrics
         if (strcmp(cur->samples[i].name, "veer_act_errors_total") == 0)
             errors += cur->samples[i].value;
     double misses = get(cur, "veer_act_deadline_misses_total", NULL, NULL);
-    put(s, "act rate %.1f/s   acts %.0f   fallbacks %.0f   %sdeadline misses %.0f%s   errors %.0f   switches %.0f   "
-           "miss bursts %.0f\n\n",
-        rate, acts, get(cur, "veer_act_fallbacks_total", NULL, NULL), misses > 0 ? sgr(s, "\033[33m") : "", misses,
-        RESET(s), errors, get(cur, "veer_switches_total", NULL, NULL),
+    put(s,
+        "act rate %.1f/s   acts %.0f   fallbacks %.0f   %sdeadline misses %.0f%s   errors %.0f   "
+        "switches %.0f   "
+        "miss bursts %.0f\n\n",
+        rate, acts, get(cur, "veer_act_fallbacks_total", NULL, NULL),
+        misses > 0 ? sgr(s, "\033[33m") : "", misses, RESET(s), errors,
+        get(cur, "veer_switches_total", NULL, NULL),
         get(cur, "veer_deadline_bursts_total", NULL, NULL));
 }
 
-static void render_channels(screen *s, const veer_cli_metrics *cur, const veer_cli_metrics *prev, double dt)
+static void render_channels(screen *s, const veer_cli_metrics *cur, const veer_cli_metrics *prev,
+                            double dt)
 {
-    put(s, "%s%-24s %-28s %10s %12s %9s%s\n", sgr(s, "\033[7m"), "CHANNEL", "TASK", "ACTS/S", "ACTS", "SWITCHES",
-        RESET(s));
+    put(s, "%s%-24s %-28s %10s %12s %9s%s\n", sgr(s, "\033[7m"), "CHANNEL", "TASK", "ACTS/S",
+        "ACTS", "SWITCHES", RESET(s));
     int rows = 0;
     for (size_t i = 0; i < cur->n; i++) {
         const veer_cli_sample *smp = &cur->samples[i];
         if (strcmp(smp->name, "veer_channel_task") != 0)
             continue;
-        const char *ch = veer_cli_sample_label(smp, "channel"), *task = veer_cli_sample_label(smp, "task");
+        const char *ch = veer_cli_sample_label(smp, "channel"),
+                   *task = veer_cli_sample_label(smp, "task");
         if (ch == NULL || task == NULL)
             continue;
         double acts = get(cur, "veer_channel_acts_total", "channel", ch);
@@ -154,14 +166,16 @@ static const char *const STAGES[] = {"decode", "policy", "reply", "total"};
 
 static void render_latency(screen *s, const veer_cli_metrics *cur, const veer_cli_metrics *prev)
 {
-    put(s, "%s%-8s %10s %9s %9s %9s %9s %9s%s   (last 10 s)\n", sgr(s, "\033[7m"), "STAGE", "COUNT", "p50", "p90",
-        "p99", "p99.9", "max", RESET(s));
+    put(s, "%s%-8s %10s %9s %9s %9s %9s %9s%s   (last 10 s)\n", sgr(s, "\033[7m"), "STAGE", "COUNT",
+        "p50", "p90", "p99", "p99.9", "max", RESET(s));
     static const char *const Q[] = {"0.5", "0.9", "0.99", "0.999", "1"};
     for (size_t st = 0; st < sizeof STAGES / sizeof STAGES[0]; st++) {
-        put(s, "%-8s %10.0f", STAGES[st], get(cur, "veer_act_stage_recent_count", "stage", STAGES[st]));
+        put(s, "%-8s %10.0f", STAGES[st],
+            get(cur, "veer_act_stage_recent_count", "stage", STAGES[st]));
         for (size_t q = 0; q < 5; q++) {
             double v = NAN;
-            veer_cli_metrics_get2(cur, "veer_act_stage_recent_seconds", "stage", STAGES[st], "quantile", Q[q], &v);
+            veer_cli_metrics_get2(cur, "veer_act_stage_recent_seconds", "stage", STAGES[st],
+                                  "quantile", Q[q], &v);
             char d[32];
             veer_cli_duration(v, d, sizeof d);
             put(s, " %9s", d);
@@ -171,9 +185,10 @@ static void render_latency(screen *s, const veer_cli_metrics *cur, const veer_cl
 
     /* The histogram of the total time over the last interval, from the cumulative buckets. */
     double le[MAX_BUCKETS], now[MAX_BUCKETS], before[MAX_BUCKETS], ble[MAX_BUCKETS];
-    size_t n = veer_cli_metrics_buckets(cur, "veer_act_stage_seconds", "stage", "total", le, now, MAX_BUCKETS);
-    size_t nb = prev ? veer_cli_metrics_buckets(prev, "veer_act_stage_seconds", "stage", "total", ble, before,
-                                                MAX_BUCKETS)
+    size_t n = veer_cli_metrics_buckets(cur, "veer_act_stage_seconds", "stage", "total", le, now,
+                                        MAX_BUCKETS);
+    size_t nb = prev ? veer_cli_metrics_buckets(prev, "veer_act_stage_seconds", "stage", "total",
+                                                ble, before, MAX_BUCKETS)
                      : 0;
     /* The last interval's requests; when there were none, everything since veerd started. */
     double count[MAX_BUCKETS], top = 0;
@@ -193,7 +208,8 @@ static void render_latency(screen *s, const veer_cli_metrics *cur, const veer_cl
             }
         }
     }
-    put(s, "\ntotal time, %s:\n", since_start ? "requests since start" : "requests in the last interval");
+    put(s, "\ntotal time, %s:\n",
+        since_start ? "requests since start" : "requests in the last interval");
     if (first == n) {
         put(s, "  (no requests)\n\n");
         return;
@@ -231,16 +247,20 @@ static void render_drift(screen *s, const veer_cli_metrics *cur)
 {
     double fill = get(cur, "veer_drift_window_states", "scope", "service");
     if (!isfinite(fill)) {
-        put(s, "drift: not monitored (no training statistics in the bundle, or veerd --monitors 0)\n");
+        put(s,
+            "drift: not monitored (no training statistics in the bundle, or veerd --monitors 0)\n");
         return;
     }
     double level = get(cur, "veer_drift_level", "scope", "service");
     double exceed = get(cur, "veer_drift_exceed_level", "scope", "service");
-    put(s, "drift  %slevel %s%s   window %.0f/%.0f   %sexceedance %.1f %% (%s)%s   out of coverage %.0f in window, "
-           "%.0f total\n",
-        level_color(s, level), level_name(level), RESET(s), fill, get(cur, "veer_drift_window_size", "scope", "service"),
-        level_color(s, exceed), 100 * get(cur, "veer_drift_exceed_rate", "scope", "service"), level_name(exceed),
-        RESET(s), get(cur, "veer_drift_out_of_coverage_window", "scope", "service"),
+    put(s,
+        "drift  %slevel %s%s   window %.0f/%.0f   %sexceedance %.1f %% (%s)%s   out of coverage "
+        "%.0f in window, "
+        "%.0f total\n",
+        level_color(s, level), level_name(level), RESET(s), fill,
+        get(cur, "veer_drift_window_size", "scope", "service"), level_color(s, exceed),
+        100 * get(cur, "veer_drift_exceed_rate", "scope", "service"), level_name(exceed), RESET(s),
+        get(cur, "veer_drift_out_of_coverage_window", "scope", "service"),
         get(cur, "veer_drift_out_of_coverage_total", "scope", "service"));
 
     size_t nf = 0;
@@ -263,10 +283,11 @@ static void render_drift(screen *s, const veer_cli_metrics *cur)
     }
     if (k > MAX_FEATURE_ROWS)
         qsort(rows, k, sizeof *rows, by_psi_desc); /* many features: the most drifted first */
-    put(s, "%s%-24s %9s %12s  %-6s%s\n", sgr(s, "\033[7m"), "FEATURE", "PSI", "SHIFT (sd)", "LEVEL", RESET(s));
+    put(s, "%s%-24s %9s %12s  %-6s%s\n", sgr(s, "\033[7m"), "FEATURE", "PSI", "SHIFT (sd)", "LEVEL",
+        RESET(s));
     for (size_t i = 0; i < k && i < MAX_FEATURE_ROWS; i++)
-        put(s, "%s%-24.24s %9.4f %+12.3f  %-6s%s\n", level_color(s, rows[i].level), rows[i].name, rows[i].psi,
-            rows[i].shift, level_name(rows[i].level), RESET(s));
+        put(s, "%s%-24.24s %9.4f %+12.3f  %-6s%s\n", level_color(s, rows[i].level), rows[i].name,
+            rows[i].psi, rows[i].shift, level_name(rows[i].level), RESET(s));
     if (k > MAX_FEATURE_ROWS)
         put(s, "(%zu more features with lower PSI)\n", k - MAX_FEATURE_ROWS);
     veer__free(rows);
@@ -274,13 +295,15 @@ static void render_drift(screen *s, const veer_cli_metrics *cur)
 
 static void sleep_seconds(double seconds)
 {
-    struct timespec ts = {.tv_sec = (time_t)seconds, .tv_nsec = (long)((seconds - floor(seconds)) * 1e9)};
+    struct timespec ts = {.tv_sec = (time_t)seconds,
+                          .tv_nsec = (long)((seconds - floor(seconds)) * 1e9)};
     while (!interrupted && nanosleep(&ts, &ts) != 0) {
     }
 }
 
 /* Scrapes and parses; returns 0 or an exit code with `why` filled. */
-static int scrape(const char *address, uint32_t timeout_ms, veer_cli_metrics *out, char *why, size_t cap)
+static int scrape(const char *address, uint32_t timeout_ms, veer_cli_metrics *out, char *why,
+                  size_t cap)
 {
     char *body = NULL;
     int rc = veer_cli_metrics_fetch(address, timeout_ms, &body, why, cap);
@@ -311,7 +334,8 @@ static int run(int argc, char **argv)
             char *end;
             interval = strtod(argv[++i], &end);
             if (*end != '\0' || !(interval >= 0.1 && interval <= 3600)) {
-                fprintf(stderr, "veer top: --interval: expected seconds from 0.1 to 3600, got '%s'\n", v);
+                fprintf(stderr,
+                        "veer top: --interval: expected seconds from 0.1 to 3600, got '%s'\n", v);
                 return VEER_CLI_USAGE;
             }
         } else if (strcmp(a, "--frames") == 0 && v) {
@@ -367,13 +391,14 @@ static int run(int argc, char **argv)
             break;
         rc = scrape(address, timeout_ms, &cur, why, sizeof why);
         clock_gettime(CLOCK_MONOTONIC, &t_now);
-        double dt = (double)(t_now.tv_sec - t_prev.tv_sec) + 1e-9 * (double)(t_now.tv_nsec - t_prev.tv_nsec);
+        double dt = (double)(t_now.tv_sec - t_prev.tv_sec) +
+                    1e-9 * (double)(t_now.tv_nsec - t_prev.tv_nsec);
         scr.len = 0;
         if (!once)
             put(&scr, "\033[H\033[2J");
         if (rc != 0) {
-            put(&scr, "veer top  %s  %sveerd not reachable%s: %s\n", address, sgr(&scr, "\033[1;31m"), RESET(&scr),
-                why);
+            put(&scr, "veer top  %s  %sveerd not reachable%s: %s\n", address,
+                sgr(&scr, "\033[1;31m"), RESET(&scr), why);
             if (once) {
                 fputs(scr.text, stderr);
                 break;
@@ -403,4 +428,5 @@ static int run(int argc, char **argv)
     return rc;
 }
 
-const veer_cli_command veer_cli_cmd_top = {"top", "live terminal view of veerd's metrics (latency, drift)", run};
+const veer_cli_command veer_cli_cmd_top = {
+    "top", "live terminal view of veerd's metrics (latency, drift)", run};
