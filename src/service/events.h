@@ -1,7 +1,8 @@
 /* The events socket: a ZeroMQ PUB socket on which veerd announces what changed, as two frames,
- * a topic ("veer.switch", "veer.task", "veer.drift", "veer.deadline", "veer.model") for prefix subscriptions and one serialized
- * veer.wire.Event. Publishing never blocks: a subscriber that falls behind loses events (their
- * seq numbers show the gap) rather than slowing the service. Loop thread only. */
+ * a topic ("veer.switch", "veer.task", "veer.drift", "veer.deadline", "veer.model") for prefix
+ * subscriptions and one serialized veer.wire.Event. Publishing never blocks: a subscriber that
+ * falls behind loses events (their seq numbers show the gap) rather than slowing the service.
+ * Loop thread only. */
 #ifndef VEER_SERVICE_EVENTS_H
 #define VEER_SERVICE_EVENTS_H
 
