@@ -24,6 +24,7 @@
 
 #define ACT_RECV_TIMEOUT_MS 50 /* how often an idle thread checks for stop and announces quiescence */
 #define POLICY_WINDOW 1024u
+#define ACT_DRAIN_MAX_NS 2000000000ull /* at most 2 s answering queued acts when stopping */
 
 struct veer__act {
     veer__act_config cfg;
@@ -61,7 +62,8 @@ static void record_policy_time(veer__act *a, uint64_t ns)
     if (++a->in_window < POLICY_WINDOW)
         return;
     uint64_t p99 = 0;
-    if (veer_hist_percentile(a->window[a->current], 99.0, &p99) == 0)
+    double pct = a->cfg.deadline_percentile ? (double)a->cfg.deadline_percentile : 99.0;
+    if (veer_hist_percentile(a->window[a->current], pct, &p99) == 0)
         a->policy_p99_ns = p99;
     a->current ^= 1;
     veer_hist_reset(a->window[a->current]);
@@ -263,8 +265,10 @@ static void *act_main(void *arg)
         if (atomic_load_explicit(&a->stop, memory_order_acquire))
             break;
     }
-    /* Stopping: answer what is already queued, then go. */
-    while (veer__wire_recv(a->socket, &a->msg, ZMQ_DONTWAIT) == 0) {
+    /* Stopping: answer what is already queued, then go. Bounded in time, so controllers that
+     * keep sending faster than the thread answers cannot hold the stop off for ever. */
+    uint64_t drain_end = veer__now_ns() + ACT_DRAIN_MAX_NS;
+    while (veer__now_ns() < drain_end && veer__wire_recv(a->socket, &a->msg, ZMQ_DONTWAIT) == 0) {
         serve_one(a);
         veer__channels_quiescent(a->cfg.channels);
     }

@@ -8,8 +8,8 @@
  *
  * Deadlines. The deadline counts from the moment the thread takes the request off the socket
  * (time spent queued inside libzmq before that is invisible to the server; the client's own
- * local deadline covers it). A request whose policy would finish late by the running p99 of
- * policy time, or that did finish late, gets the fallback action with VEER_ACT_DEADLINE.
+ * local deadline covers it). A request whose policy would finish late by the running p99 (or
+ * --deadline-percentile) of policy time, or that did finish late, gets the fallback action with VEER_ACT_DEADLINE.
  *
  * Coverage. Every valid state also goes to a drift monitor (include/veer/drift.h) of which this
  * thread is the writer; an action the policy computed for a state beyond the training p99.9
@@ -37,6 +37,7 @@ typedef struct veer__act_config {
     const veer_bundle *bundle;
     veer__channels *channels;
     uint32_t default_deadline_us;
+    uint32_t deadline_percentile;     /* 50..100; 0 means 99 */
     uint32_t max_message_bytes;
     const uint8_t *server_secret_key; /* 32 bytes: require CURVE; NULL: no authentication */
     int monitors_off; /* 1: no drift monitor, no stage latency recorders (for the overhead

@@ -49,6 +49,11 @@ static const opt_desc OPTIONS[] = {
     {"--default-deadline-us", "VEER_DEFAULT_DEADLINE_US", OPT_U32, OFF(default_deadline_us),
      "1000", 10, 10000000, 0,
      "Deadline in microseconds for act requests that do not carry one."},
+    {"--deadline-percentile", "VEER_DEADLINE_PERCENTILE", OPT_U32, OFF(deadline_percentile), "99", 50, 100, 0,
+     "Percentile of recent policy times used to predict whether an act would finish after its\n"
+     "deadline (then it gets the fallback at once). 99 is safe for machines with headroom; on a\n"
+     "loaded machine whose p99 passes the deadline every act falls back, so a lower value\n"
+     "trades a few late actions for many fresh ones."},
     {"--max-message-bytes", "VEER_MAX_MESSAGE_BYTES", OPT_U32, OFF(max_message_bytes),
      "16777216", 1024, 1073741824, 0,
      "Largest admin request handled. Up to twice this gets an EMSGSIZE error reply; beyond\n"

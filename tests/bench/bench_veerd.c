@@ -1,7 +1,8 @@
 /* bench_veerd: act round trips through a real veerd against the floor of a bare ZeroMQ echo of
  * the same message sizes plus in-process inference, all measured in the same run.
  *
- * Per bundle and transport (tcp on 127.0.0.1, ipc):
+ * The echo and veerd each run in their own process. Per bundle and transport (tcp on
+ * 127.0.0.1, ipc):
  *   1. in-process inference: veer_act on this thread (p50, p99, p99.9);
  *   2. closed loop: one DEALER, request -> reply, against the echo and against veerd;
  *   3. paced: 4 controllers at 1 kHz, deadline 1 ms, against the echo and against veerd.
@@ -13,7 +14,8 @@
  *   p50 <= echo p50 + 1.2 x inference p50;  p99.9 <= 1.5 x echo p99.9 + inference p99.9;
  *   paced miss rate <= 1.5 x the echo's miss rate at the same pacing.
  * No assertion: it prints, and exits 0. Usage:
- *   bench_veerd VEERD BUNDLE [BUNDLE...] [--seconds S]   (S: paced duration, default 30) */
+ *   bench_veerd VEERD BUNDLE [BUNDLE...] [--seconds S] [--veerd-arg ARG]...
+ * (S: paced duration, default 30; each ARG is passed to veerd, e.g. --deadline-percentile=90) */
 #include <errno.h>
 #include <inttypes.h>
 #include <pthread.h>
@@ -37,12 +39,30 @@
 #define DEADLINE_NS 1000000ull
 
 static double seconds_paced = 30.0;
+static const char *veerd_extra[8]; /* --veerd-arg values, passed on to veerd */
+static int veerd_extra_n;
 
 typedef struct target {
     const char *act;           /* endpoint */
     size_t req_len;            /* bytes of one act request */
     uint8_t req[4096];
+    Veer__Wire__Request *q;    /* the request, for repacking with another id */
 } target;
+
+/* The id of a Request or Reply from its first bytes: field 1 (protocol, varint 1) then field
+ * 2 (id, varint), as protobuf-c packs them (fields in number order). 0 when not in that form. */
+static uint64_t leading_id(const uint8_t *p, size_t n)
+{
+    if (n < 4 || p[0] != 0x08 || p[1] != 0x01 || p[2] != 0x10)
+        return 0;
+    uint64_t v = 0;
+    for (size_t i = 3, shift = 0; i < n && shift < 64; i++, shift += 7) {
+        v |= (uint64_t)(p[i] & 0x7f) << shift;
+        if (!(p[i] & 0x80))
+            return v;
+    }
+    return 0;
+}
 
 /* ---- the echo floor: a ROUTER that answers every request with a reply-sized frame ---------- */
 
@@ -50,9 +70,12 @@ typedef struct echo {
     void *ctx;
     char endpoint[256];
     size_t reply_len;
-    volatile int stop;
-    pthread_t th;
 } echo;
+
+/* The echo runs in its own process, like veerd, so the floor pays the same cross-process
+ * wake-ups a real service does. SIGTERM ends it. */
+static volatile sig_atomic_t echo_stop;
+static void on_echo_term(int sig) { echo_stop = 1; }
 
 static void *echo_main(void *arg)
 {
@@ -69,10 +92,16 @@ static void *echo_main(void *arg)
     zmq_msg_t id, body;
     zmq_msg_init(&id);
     zmq_msg_init(&body);
-    while (!e->stop) {
+    while (!echo_stop) {
         if (zmq_msg_recv(&id, s, 0) < 0)
             continue;
         zmq_msg_recv(&body, s, 0);
+        /* The reply is as long as veerd's and starts with the request's first bytes, which
+         * hold its protocol and id fields (wire.h: the same leading fields as a Reply), so the
+         * sender can match replies to requests exactly as it does with veerd. */
+        size_t n = zmq_msg_size(&body) < e->reply_len ? zmq_msg_size(&body) : e->reply_len;
+        memset(reply, 0, e->reply_len);
+        memcpy(reply, zmq_msg_data(&body), n);
         zmq_msg_send(&id, s, ZMQ_SNDMORE);
         zmq_send(s, reply, e->reply_len, 0);
     }
@@ -178,7 +207,10 @@ static void *paced_main(void *arg)
 {
     paced *p = arg;
     void *s = dealer(p->ctx, p->t->act);
-    uint8_t buf[4096];
+    uint8_t buf[4096], req[4096];
+    Veer__Wire__Request q = *p->t->q;
+    Veer__Wire__ActRequest ar = *p->t->q->act;
+    q.act = &ar;
     /* Warm up the connection before the clock starts. */
     zmq_send(s, p->t->req, p->t->req_len, 0);
     zmq_recv(s, buf, sizeof buf, 0);
@@ -187,26 +219,34 @@ static void *paced_main(void *arg)
     zmq_pollitem_t it = {s, 0, ZMQ_POLLIN, 0};
     for (uint64_t k = 0; k < n; k++) {
         uint64_t scheduled = start + k * 1000000ull;
+        q.id = 1000000 + k; /* fixed varint length: the same size every time */
+        ar.seq = k;
+        size_t len = veer__wire__request__pack(&q, req);
         sleep_until(scheduled);
         uint64_t t_send = veer__now_ns();
         veer_hist_record(p->lateness, t_send - scheduled + 1);
-        zmq_send(s, p->t->req, p->t->req_len, 0);
+        zmq_send(s, req, len, 0);
         p->sent++;
-        /* Wait at most until the next tick plus a grace period, so one lost reply cannot stall
-         * the loop; a reply that comes later is read and counted then. */
+        /* Wait for this request's reply (matched by id; a late reply to an earlier request,
+         * already counted as a miss, is dropped) for at most 50 ms, so one lost reply cannot
+         * stall the loop. A reply that does not come counts as a miss at the time waited. */
         int got = 0;
-        while (!got) {
-            long left_ms = (long)((scheduled + 50000000ull - veer__now_ns()) / 1000000ull);
-            if (zmq_poll(&it, 1, left_ms > 0 ? left_ms : 0) <= 0)
+        for (;;) {
+            uint64_t now = veer__now_ns();
+            if (now >= scheduled + 50000000ull)
                 break;
-            int len = zmq_recv(s, buf, sizeof buf, 0);
+            long left_ms = (long)((scheduled + 50000000ull - now) / 1000000ull) + 1;
+            if (zmq_poll(&it, 1, left_ms) <= 0)
+                continue;
+            int rlen = zmq_recv(s, buf, sizeof buf, 0);
+            if (rlen <= 0 || leading_id(buf, (size_t)rlen) != q.id)
+                continue;
             uint64_t lat = veer__now_ns() - scheduled;
             veer_hist_record(p->latency, lat);
             int miss = lat > DEADLINE_NS;
-            if (p->check_flags && len > 0) {
-                Veer__Wire__Reply *r = veer__wire__reply__unpack(NULL, (size_t)len, buf);
-                if (r != NULL && r->body_case == VEER__WIRE__REPLY__BODY_ACT &&
-                    (r->act->flags & VEER_ACT_DEADLINE)) {
+            if (p->check_flags) {
+                Veer__Wire__Reply *r = veer__wire__reply__unpack(NULL, (size_t)rlen, buf);
+                if (r != NULL && r->body_case == VEER__WIRE__REPLY__BODY_ACT && (r->act->flags & VEER_ACT_DEADLINE)) {
                     miss = 1;
                     p->flagged++;
                 }
@@ -215,8 +255,10 @@ static void *paced_main(void *arg)
             }
             p->misses += miss;
             got = 1;
+            break;
         }
         if (!got) {
+            veer_hist_record(p->latency, veer__now_ns() - scheduled);
             p->lost++;
             p->misses++;
         }
@@ -317,8 +359,13 @@ static pid_t start_veerd(const char *veerd, const char *bundle, const char *dir,
         snprintf(log, sizeof log, "%s/veerd.log", dir);
         if (freopen(log, "w", stderr) == NULL)
             _exit(1);
-        execl(veerd, veerd, "--bundle", bundle, "--state-dir", state, "--act", act, "--admin", admin, "--events",
-              events, (char *)NULL);
+        const char *argv[24] = {veerd, "--bundle", bundle, "--state-dir", state, "--act", act, "--admin", admin,
+                                "--events", events};
+        int n = 11;
+        for (int i = 0; i < veerd_extra_n; i++)
+            argv[n++] = veerd_extra[i];
+        argv[n] = NULL;
+        execv(veerd, (char *const *)argv);
         _exit(127);
     }
     return pid;
@@ -419,14 +466,14 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
     veer__wire__reply__free_unpacked(r, NULL);
     zmq_close(adm);
 
-    target tv = {.act = act};
+    target tv = {.act = act, .q = &q};
     Veer__Wire__ActRequest ar = VEER__WIRE__ACT_REQUEST__INIT;
     ar.channel = "arm";
     ar.n_state = sd;
     ar.state = (float *)info->reference_states;
     ar.deadline_us = 1000;
     ar.seq = 1;
-    q.id = 3;
+    q.id = 1000000;
     q.body_case = VEER__WIRE__REQUEST__BODY_ACT;
     q.act = &ar;
     tv.req_len = pack_request(&q, tv.req);
@@ -436,9 +483,17 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
     uint8_t buf[4096];
     int reply_len = zmq_recv(probe, buf, sizeof buf, 0);
     zmq_close(probe);
-    echo e = {.ctx = ctx, .reply_len = (size_t)reply_len};
+    echo e = {.reply_len = (size_t)reply_len};
     snprintf(e.endpoint, sizeof e.endpoint, "%s", echo_ep);
-    pthread_create(&e.th, NULL, echo_main, &e);
+    fflush(stdout);
+    pid_t echo_pid = fork();
+    if (echo_pid == 0) {
+        signal(SIGTERM, on_echo_term);
+        e.ctx = zmq_ctx_new();
+        echo_main(&e);
+        zmq_ctx_term(e.ctx);
+        _exit(0);
+    }
     target te = tv;
     te.act = echo_ep;
     printf("  request %zu bytes, reply %d bytes; OpenBLAS kernel %s\n", tv.req_len, reply_len, veer_blas_kernel());
@@ -465,7 +520,7 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
     print_summary("pacing loop lateness (veerd run)", pv.lateness);
     double miss_e = (double)pe.misses / (double)pe.sent, miss_v = (double)pv.misses / (double)pv.sent;
     printf("  misses: echo %" PRIu64 "/%" PRIu64 " (%.4f %%), veerd %" PRIu64 "/%" PRIu64
-           " (%.4f %%; %" PRIu64 " flagged by veerd, %" PRIu64 " without reply)\n",
+           " (%.4f %%; %" PRIu64 " flagged by veerd, %" PRIu64 " without a reply within 50 ms)\n",
            pe.misses, pe.sent, 100 * miss_e, pv.misses, pv.sent, 100 * miss_v, pv.flagged, pv.lost);
 
     /* 5. Throughput. */
@@ -488,8 +543,8 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
         printf("  target misses: the echo missed none; veerd missed %" PRIu64 " %s\n", pv.misses,
                pv.misses == 0 ? "(MET)" : "(NOT MET: no floor to scale)");
 
-    e.stop = 1;
-    pthread_join(e.th, NULL);
+    kill(echo_pid, SIGTERM);
+    waitpid(echo_pid, NULL, 0);
     kill(pid, SIGTERM);
     int status = 0;
     waitpid(pid, &status, 0);
@@ -516,7 +571,7 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
 int main(int argc, char **argv)
 {
     if (argc < 3) {
-        fprintf(stderr, "usage: bench_veerd VEERD BUNDLE [BUNDLE...] [--seconds S]\n");
+        fprintf(stderr, "usage: bench_veerd VEERD BUNDLE [BUNDLE...] [--seconds S] [--veerd-arg ARG]...\n");
         return 2;
     }
     int nb = 0;
@@ -524,10 +579,14 @@ int main(int argc, char **argv)
     for (int i = 2; i < argc; i++) {
         if (strcmp(argv[i], "--seconds") == 0 && i + 1 < argc)
             seconds_paced = atof(argv[++i]);
+        else if (strcmp(argv[i], "--veerd-arg") == 0 && i + 1 < argc && veerd_extra_n < 8)
+            veerd_extra[veerd_extra_n++] = argv[++i];
         else if (nb < 16)
             bundles[nb++] = argv[i];
     }
     printf("bench_veerd: %ld online CPUs; every figure below is from this run\n", sysconf(_SC_NPROCESSORS_ONLN));
+    for (int i = 0; i < veerd_extra_n; i++)
+        printf("  veerd %s\n", veerd_extra[i]);
     for (int i = 0; i < nb; i++)
         for (int k = 0; k < 2; k++)
             if (bench_one(argv[1], bundles[i], k == 0 ? "tcp" : "ipc") != 0)

@@ -36,12 +36,12 @@ def test_curve_admin(continuous_bundle, start, tmp_path):
     # The act socket needs no key unless --act-auth.
     assert c.do_act("arm", s[0]).act.task == "a"
 
-    def attempt(curve):
+    def attempt(curve, timeout_ms=1500):
         other = harness.Client(d.eps, curve=curve)
         try:
             q = harness.wire.Request(protocol=1, id=1)
             q.switch_channel.channel, q.switch_channel.task = "arm", "b"
-            return other.send_raw(other.admin, q.SerializeToString(), timeout_ms=1500)
+            return other.send_raw(other.admin, q.SerializeToString(), timeout_ms=timeout_ms)
         finally:
             other.close()
 
@@ -52,7 +52,7 @@ def test_curve_admin(continuous_bundle, start, tmp_path):
     assert "auth: refused a CURVE connection" in d.log()
     assert stranger_public.decode() in d.log()
     # A second listed-key supervisor connection still works after the refusals.
-    assert attempt((server_public, sup_public, sup_secret)).channel.epoch == 2
+    assert attempt((server_public, sup_public, sup_secret), timeout_ms=20000).channel.epoch == 2
 
 
 def test_curve_act_socket(continuous_bundle, start, tmp_path):
@@ -113,6 +113,8 @@ def test_loopback_admin_accepted(continuous_bundle, start, tmp_path, kind):
     (["--server-key", "/nonexistent"], {}, "--allowed-keys"),
     (["--act-auth"], {}, "--act-auth"),
     (["--act-auth=maybe"], {}, "--act-auth"),
+    (["--deadline-percentile", "49"], {}, "--deadline-percentile"),
+    ([], {"VEER_DEADLINE_PERCENTILE": "101"}, "--deadline-percentile"),
 ])
 def test_bad_configuration_exits_2(continuous_bundle, tmp_path, args, env, flag):
     r = run_veerd(["--bundle", str(continuous_bundle.path), "--state-dir", str(tmp_path / "s"), *args], env)
@@ -145,7 +147,8 @@ def test_help_explains_every_flag():
     assert r.returncode == 0
     for flag in ["--bundle", "--state-dir", "--act", "--admin", "--events", "--http", "--default-deadline-us",
                  "--max-message-bytes", "--act-max-message-bytes", "--max-samples", "--max-tasks",
-                 "--max-channels", "--journal-compact-bytes", "--server-key", "--allowed-keys", "--act-auth"]:
+                 "--max-channels", "--journal-compact-bytes", "--server-key", "--allowed-keys", "--act-auth",
+                 "--deadline-percentile"]:
         assert f"  {flag} " in r.stdout, flag
     for var in ["VEER_BUNDLE", "VEER_ADMIN", "VEER_STATE_DIR", "VEER_SERVER_KEY"]:
         assert var in r.stdout
