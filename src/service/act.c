@@ -49,6 +49,9 @@ struct veer__act {
     veer_drift *drift;      /* NULL without training statistics */
     veer_hist_recorder *stage[VEER__ACT_STAGE_COUNT]; /* all NULL with monitors off */
     uint64_t reply_start_ns; /* when serve_act began packing its reply; 0 otherwise */
+    veer__channel *acted_on; /* the channel of the request being served, NULL otherwise */
+    veer_hist_recorder *channel_latency[VEER__ACT_CHANNEL_HISTS]; /* NULL with monitors off */
+    _Atomic(veer__channel *) channel_bound[VEER__ACT_CHANNEL_HISTS]; /* published on first use */
 
     _Atomic uint64_t acts, fallbacks, deadline_misses, errors, no_task;
     _Atomic uint64_t errors_by_code[VEER__ACT_ERROR_CODES];
@@ -68,6 +71,22 @@ static void record_policy_time(veer__act *a, uint64_t ns)
     a->current ^= 1;
     veer_hist_reset(a->window[a->current]);
     a->in_window = 0;
+}
+
+/* Records into the channel's recorder, binding a free one on the channel's first act. Only this
+ * thread binds, so a scan of a few pointers is all it takes; the release store publishes the
+ * binding to the metrics reader. */
+static void record_channel(veer__act *a, veer__channel *ch, uint64_t ns)
+{
+    for (uint32_t i = 0; i < VEER__ACT_CHANNEL_HISTS; i++) {
+        veer__channel *bound = atomic_load_explicit(&a->channel_bound[i], memory_order_relaxed);
+        if (bound == NULL)
+            atomic_store_explicit(&a->channel_bound[i], bound = ch, memory_order_release);
+        if (bound == ch) {
+            veer_hist_recorder_record(a->channel_latency[i], ns);
+            return;
+        }
+    }
 }
 
 static size_t pack_reply(veer__act *a, Veer__Wire__Reply *r)
@@ -172,6 +191,7 @@ static size_t serve_act(veer__act *a, uint64_t id, const Veer__Wire__ActRequest 
     count(&a->acts);
     if (ch != NULL)
         atomic_fetch_add_explicit(&ch->acts, 1, memory_order_relaxed);
+    a->acted_on = ch;
 
     ar.n_action = info->action_dim;
     ar.action = a->action;
@@ -248,8 +268,11 @@ static void serve_one(veer__act *a)
         if (a->reply_start_ns != 0)
             veer_hist_recorder_record(a->stage[VEER__ACT_STAGE_REPLY], t_end - a->reply_start_ns);
         veer_hist_recorder_record(a->stage[VEER__ACT_STAGE_TOTAL], t_end - t0);
+        if (a->acted_on != NULL)
+            record_channel(a, a->acted_on, t_end - t0);
     }
     a->reply_start_ns = 0;
+    a->acted_on = NULL;
 }
 
 static void *act_main(void *arg)
@@ -286,6 +309,8 @@ static void act_free(veer__act *a)
     veer_drift_destroy(a->drift);
     for (int i = 0; i < VEER__ACT_STAGE_COUNT; i++)
         veer_hist_recorder_destroy(a->stage[i]);
+    for (int i = 0; i < VEER__ACT_CHANNEL_HISTS; i++)
+        veer_hist_recorder_destroy(a->channel_latency[i]);
     veer_hist_destroy(a->window[0]);
     veer_hist_destroy(a->window[1]);
     veer__free(a->reply_buf);
@@ -322,8 +347,10 @@ int veer__act_start(const veer__act_config *cfg, veer__act **out, veer_error *er
     }
     if ((rc = veer_workspace_create(cfg->bundle, 1, &a->ws, err)) < 0)
         goto fail;
-    for (int i = 0; i < VEER__ACT_STAGE_COUNT && !cfg->monitors_off; i++) {
-        if (veer_hist_recorder_create(&a->stage[i]) != 0) {
+    for (int i = 0; i < VEER__ACT_STAGE_COUNT + VEER__ACT_CHANNEL_HISTS && !cfg->monitors_off; i++) {
+        veer_hist_recorder **r =
+            i < VEER__ACT_STAGE_COUNT ? &a->stage[i] : &a->channel_latency[i - VEER__ACT_STAGE_COUNT];
+        if (veer_hist_recorder_create(r) != 0) {
             rc = veer__error_set(err, VEER_ENOMEM, "act", NULL);
             goto fail;
         }
@@ -378,6 +405,15 @@ struct veer_hist_recorder *veer__act_latency(veer__act *a) { return a->stage[VEE
 struct veer_hist_recorder *veer__act_stage(veer__act *a, veer__act_stage_id stage)
 {
     return stage >= 0 && stage < VEER__ACT_STAGE_COUNT ? a->stage[stage] : NULL;
+}
+
+struct veer_hist_recorder *veer__act_channel_latency(veer__act *a, uint32_t i, veer__channel **channel)
+{
+    *channel = NULL;
+    if (i >= VEER__ACT_CHANNEL_HISTS || a->channel_latency[i] == NULL)
+        return NULL;
+    *channel = atomic_load_explicit(&a->channel_bound[i], memory_order_acquire);
+    return *channel != NULL ? a->channel_latency[i] : NULL;
 }
 
 uint64_t veer__act_errors_by_code(const veer__act *a, int code)

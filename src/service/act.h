@@ -82,6 +82,14 @@ struct veer_hist_recorder *veer__act_latency(veer__act *a);
  * monitors off. Same reading rule. */
 struct veer_hist_recorder *veer__act_stage(veer__act *a, veer__act_stage_id stage);
 
+/* Per-channel latency (the total stage) for the first VEER__ACT_CHANNEL_HISTS channels that act:
+ * a recorder is bound to a channel by the act thread on the channel's first act and stays bound
+ * (channels are never removed). Later channels are counted but have no histogram. Returns the
+ * i-th recorder and, through *channel, its channel (NULL while unbound, or with monitors off).
+ * Readers as for veer__act_latency. */
+#define VEER__ACT_CHANNEL_HISTS 16
+struct veer_hist_recorder *veer__act_channel_latency(veer__act *a, uint32_t i, veer__channel **channel);
+
 /* Error replies so far with code `code` (a negative VEER_E*; 0 for codes out of range). */
 uint64_t veer__act_errors_by_code(const veer__act *a, int code);
 
