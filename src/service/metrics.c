@@ -26,6 +26,7 @@ typedef struct stage_hists {
 struct veer__metrics {
     veer__metrics_config cfg;
     stage_hists stage[VEER__ACT_STAGE_COUNT];
+    veer_hist *channel[VEER__ACT_CHANNEL_HISTS]; /* cumulative total time per bound channel */
     veer_hist *scratch;
     int slot;
     veer_drift_report *drift; /* NULL without a drift monitor */
@@ -43,6 +44,8 @@ int veer__metrics_create(const veer__metrics_config *cfg, veer__metrics **out)
         for (int k = 0; k < RECENT_SLOTS && rc == 0; k++)
             rc = veer_hist_create(&m->stage[s].recent[k]);
     }
+    for (int c = 0; c < VEER__ACT_CHANNEL_HISTS && rc == 0; c++)
+        rc = veer_hist_create(&m->channel[c]);
     veer_drift *drift = cfg->act ? veer__act_drift(cfg->act) : NULL;
     if (rc == 0 && drift != NULL)
         rc = veer_drift_report_create(drift, &m->drift);
@@ -63,6 +66,8 @@ void veer__metrics_destroy(veer__metrics *m)
         for (int k = 0; k < RECENT_SLOTS; k++)
             veer_hist_destroy(m->stage[s].recent[k]);
     }
+    for (int c = 0; c < VEER__ACT_CHANNEL_HISTS; c++)
+        veer_hist_destroy(m->channel[c]);
     veer_hist_destroy(m->scratch);
     veer_drift_report_destroy(m->drift);
     veer__free(m);
@@ -82,6 +87,12 @@ static void take_intervals(veer__metrics *m)
         veer_hist_recorder_take(r, m->scratch);
         veer_hist_merge(m->stage[s].cumulative, m->scratch);
         veer_hist_merge(m->stage[s].recent[m->slot], m->scratch);
+    }
+    for (uint32_t c = 0; c < VEER__ACT_CHANNEL_HISTS; c++) {
+        veer__channel *ch;
+        veer_hist_recorder *r = veer__act_channel_latency(m->cfg.act, c, &ch);
+        if (r != NULL)
+            veer_hist_recorder_take(r, m->channel[c]);
     }
 }
 
@@ -242,25 +253,45 @@ static int bucket_bounds(uint64_t *out)
     return n;
 }
 
+/* One histogram's samples: cumulative buckets at `bounds` (ns), +Inf, _sum and _count, all with
+ * the label key="value". */
+static void histogram(veer__http_response *r, const char *name, const char *key, const char *value,
+                      const veer_hist *h, const uint64_t *bounds, int nb)
+{
+    uint64_t count = veer_hist_count(h);
+    for (int b = 0; b <= nb; b++) {
+        veer__http_body_printf(r, "%s_bucket{%s=\"", name, key);
+        veer__metrics_label_value(r, value);
+        if (b < nb)
+            veer__http_body_printf(r, "\",le=\"%.9g\"} %llu\n", (double)bounds[b] * 1e-9,
+                                   (unsigned long long)veer_hist_count_le(h, bounds[b]));
+        else
+            veer__http_body_printf(r, "\",le=\"+Inf\"} %llu\n", (unsigned long long)count);
+    }
+    veer__http_body_printf(r, "%s_sum{%s=\"", name, key);
+    veer__metrics_label_value(r, value);
+    veer__http_body_printf(r, "\"} %.17g\n%s_count{%s=\"", (double)veer_hist_sum(h) * 1e-9, name,
+                           key);
+    veer__metrics_label_value(r, value);
+    veer__http_body_printf(r, "\"} %llu\n", (unsigned long long)count);
+}
+
 static void render_latency(veer__metrics *m, veer__http_response *r)
 {
     uint64_t bounds[32];
     int nb = bucket_bounds(bounds);
     family(r, "veer_act_stage_seconds", "histogram",
            "Time per stage of act requests since start (decode, policy, reply, total).");
-    for (int s = 0; s < VEER__ACT_STAGE_COUNT && !m->cfg.monitors_off; s++) {
-        const veer_hist *h = m->stage[s].cumulative;
-        uint64_t count = veer_hist_count(h);
-        for (int b = 0; b < nb; b++)
-            veer__http_body_printf(
-                r, "veer_act_stage_seconds_bucket{stage=\"%s\",le=\"%.9g\"} %llu\n", STAGE_NAMES[s],
-                (double)bounds[b] * 1e-9, (unsigned long long)veer_hist_count_le(h, bounds[b]));
-        veer__http_body_printf(r, "veer_act_stage_seconds_bucket{stage=\"%s\",le=\"+Inf\"} %llu\n",
-                               STAGE_NAMES[s], (unsigned long long)count);
-        veer__http_body_printf(r, "veer_act_stage_seconds_sum{stage=\"%s\"} %.17g\n",
-                               STAGE_NAMES[s], (double)veer_hist_sum(h) * 1e-9);
-        veer__http_body_printf(r, "veer_act_stage_seconds_count{stage=\"%s\"} %llu\n",
-                               STAGE_NAMES[s], (unsigned long long)count);
+    for (int s = 0; s < VEER__ACT_STAGE_COUNT && !m->cfg.monitors_off; s++)
+        histogram(r, "veer_act_stage_seconds", "stage", STAGE_NAMES[s], m->stage[s].cumulative,
+                  bounds, nb);
+    family(r, "veer_channel_act_seconds", "histogram",
+           "Total time of act requests per channel since start (the first 16 channels that act).");
+    for (uint32_t c = 0; c < VEER__ACT_CHANNEL_HISTS && m->cfg.act != NULL; c++) {
+        veer__channel *ch;
+        if (veer__act_channel_latency(m->cfg.act, c, &ch) != NULL)
+            histogram(r, "veer_channel_act_seconds", "channel", ch->name, m->channel[c], bounds,
+                      nb);
     }
 
     family(r, "veer_act_stage_recent_seconds", "gauge",

@@ -101,6 +101,13 @@ def test_metrics_after_a_known_sequence(lib, continuous_bundle, start):
         assert v("veer_act_stage_seconds_sum", stage=stage) > 0
     assert counts["total"] == requests and counts["decode"] == requests
     assert counts["reply"] == 1000  # every act that reached its reply; error replies are not act replies
+    # Per channel: the acts on each existing channel (an unknown channel has no histogram).
+    assert v("veer_channel_act_seconds_count", channel="arm") == 900
+    assert v("veer_channel_act_seconds_count", channel="lift") == 40
+    assert {dict(k)["channel"] for k in samples["veer_channel_act_seconds_count"]} == {"arm", "lift"}
+    assert v("veer_channel_act_seconds_bucket", channel="arm", le="+Inf") == 900
+    assert v("veer_channel_act_seconds_sum", channel="arm") + v("veer_channel_act_seconds_sum", channel="lift") \
+        <= v("veer_act_stage_seconds_sum", stage="total")
     misses = np.count_nonzero(flags & harness.ACT_DEADLINE)
     assert 900 + (40 - misses) <= counts["policy"] <= 940
     # Stage sums add up: decode + policy + reply <= total (the rest is checks, drift, lookups).
