@@ -158,7 +158,7 @@ static void test_round_trip(void **state)
     off_t ends[4];
     write_three(dir, ends);
     assert_int_equal(ends[0], 8); /* the magic alone */
-    seen s;
+    seen s = {0};
     veer__journal_replay rep = reopen(dir, &s);
     assert_int_equal(rep.cut, 0);
     assert_int_equal(rep.records, 3);
@@ -232,7 +232,7 @@ static void test_torn_tail_is_cut(void **state)
     for (size_t i = 0; i < sizeof cuts / sizeof cuts[0]; i++) {
         if (i > 0) { /* put the last record back */
             veer__journal *j = NULL;
-            seen s;
+            seen s = {0};
             assert_int_equal(veer__journal_open(dir, collect, &s, &j, NULL, NULL), 0);
             append_put(j, "b", 1000, -2.0f);
             veer__journal_close(j);
@@ -250,7 +250,7 @@ static void test_torn_tail_is_cut(void **state)
     }
     /* After the cut, appends land on a frame boundary and replay cleanly. */
     veer__journal *j = NULL;
-    seen s;
+    seen s = {0};
     assert_int_equal(veer__journal_open(dir, collect, &s, &j, NULL, NULL), 0);
     append_drop(j, "a");
     veer__journal_close(j);
@@ -268,7 +268,7 @@ static void test_flipped_byte_is_cut(void **state)
     write_three(dir, ends);
     /* A flipped bit in the last payload: only the last record goes. */
     flip_byte(dir, ends[3] - 100);
-    seen s;
+    seen s = {0};
     veer__journal_replay rep = reopen(dir, &s);
     assert_int_equal(rep.cut, 1);
     assert_int_equal(s.n, 2);
@@ -296,7 +296,7 @@ static void test_torn_header_and_foreign_file(void **state)
     FILE *f = fopen(p, "wb");
     fwrite("VEER", 1, 4, f);
     fclose(f);
-    seen s;
+    seen s = {0};
     veer__journal_replay rep = reopen(dir, &s);
     assert_int_equal(rep.cut, 1);
     assert_int_equal(s.n, 0);
@@ -399,7 +399,7 @@ static void test_interrupted_compaction(void **state)
     FILE *f = fopen(p, "wb");
     fputs("VEERJNL1 half a snapshot", f);
     fclose(f);
-    seen s;
+    seen s = {0};
     veer__journal_replay rep = reopen(dir, &s);
     assert_int_equal(rep.cut, 0);
     assert_int_equal(s.n, 3);
