@@ -18,12 +18,14 @@
 #include "base/base.h"
 #include "service/arena.h"
 #include "service/auth.h"
+#include "service/state_ring.h"
 #include "service/wire.h"
 #include "veer/drift.h"
 #include "veer/histogram.h"
 
 #define ACT_RECV_TIMEOUT_MS 50 /* how often an idle thread checks for stop and announces quiescence */
 #define POLICY_WINDOW 1024u
+#define ACT_STATE_RING 8192u /* states buffered for the drift monitor: 0.8 s at 10 kHz between drains */
 #define ACT_DRAIN_MAX_NS 2000000000ull /* at most 2 s answering queued acts when stopping */
 
 struct veer__act {
@@ -46,7 +48,8 @@ struct veer__act {
     int current;
     uint32_t in_window;
     uint64_t policy_p99_ns; /* 0 until the first window is full */
-    veer_drift *drift;      /* NULL without training statistics */
+    veer_drift *drift;      /* NULL without training statistics; its writer is the loop thread */
+    veer__state_ring states; /* act states on their way to the drift monitor */
     veer_hist_recorder *stage[VEER__ACT_STAGE_COUNT]; /* all NULL with monitors off */
     uint64_t reply_start_ns; /* when serve_act began packing its reply; 0 otherwise */
     veer__channel *acted_on; /* the channel of the request being served, NULL otherwise */
@@ -141,9 +144,11 @@ static size_t serve_act(veer__act *a, uint64_t id, const Veer__Wire__ActRequest 
 
     uint32_t coverage = 0;
     if (a->drift != NULL) {
-        veer_drift_result dr;
-        if (veer_drift_add(a->drift, q->state, &dr, NULL) == 0 && dr.out_of_coverage)
+        /* Only the distance test runs here; the window statistics are updated by the loop thread
+         * from the ring (veer__act_drain_states), so their cost stays off the act path. */
+        if (veer_drift_check(a->drift, q->state, NULL) == 1)
             coverage = VEER_ACT_OUT_OF_COVERAGE;
+        veer__state_ring_push(&a->states, q->state);
     }
 
     uint64_t deadline_ns = (uint64_t)(q->deadline_us ? q->deadline_us : a->cfg.default_deadline_us) * 1000u;
@@ -307,6 +312,7 @@ static void act_free(veer__act *a)
     veer_workspace_destroy(a->ws);
     veer__arena_free(&a->arena);
     veer_drift_destroy(a->drift);
+    veer__state_ring_free(&a->states);
     for (int i = 0; i < VEER__ACT_STAGE_COUNT; i++)
         veer_hist_recorder_destroy(a->stage[i]);
     for (int i = 0; i < VEER__ACT_CHANNEL_HISTS; i++)
@@ -359,6 +365,10 @@ int veer__act_start(const veer__act_config *cfg, veer__act **out, veer_error *er
     if (!cfg->monitors_off && info->has_stats && veer_drift_training_from_model(info, &train, NULL) == 0 &&
         (rc = veer_drift_create(&train, NULL, &a->drift, err)) < 0)
         goto fail;
+    if (a->drift != NULL && veer__state_ring_init(&a->states, info->state_dim, ACT_STATE_RING) != 0) {
+        rc = veer__error_set(err, VEER_ENOMEM, "act", "no memory for the drift monitor's state ring");
+        goto fail;
+    }
 
     if ((rc = veer__wire_router(cfg->zmq_ctx, cfg->endpoint, "--act", cfg->max_message_bytes, ACT_RECV_TIMEOUT_MS,
                                 cfg->server_secret_key, VEER__ZAP_ACT_DOMAIN, &a->socket, err)) < 0)
@@ -400,6 +410,23 @@ void veer__act_counters_get(const veer__act *a, veer__act_counters *out)
 }
 
 struct veer_drift *veer__act_drift(veer__act *a) { return a->drift; }
+
+uint32_t veer__act_drain_states(veer__act *a, uint32_t max)
+{
+    uint32_t n = 0;
+    const float *state;
+    while (a->drift != NULL && n < max && (state = veer__state_ring_peek(&a->states)) != NULL) {
+        veer_drift_add(a->drift, state, NULL, NULL);
+        veer__state_ring_release(&a->states);
+        n++;
+    }
+    return n;
+}
+
+uint64_t veer__act_states_dropped(const veer__act *a)
+{
+    return a->drift != NULL ? atomic_load_explicit(&((veer__act *)a)->states.dropped, memory_order_relaxed) : 0;
+}
 struct veer_hist_recorder *veer__act_latency(veer__act *a) { return a->stage[VEER__ACT_STAGE_TOTAL]; }
 
 struct veer_hist_recorder *veer__act_stage(veer__act *a, veer__act_stage_id stage)

@@ -11,10 +11,11 @@
  * local deadline covers it). A request whose policy would finish late by the running p99 (or
  * --deadline-percentile) of policy time, or that did finish late, gets the fallback action with VEER_ACT_DEADLINE.
  *
- * Coverage. Every valid state also goes to a drift monitor (include/veer/drift.h) of which this
- * thread is the writer; an action the policy computed for a state beyond the training p99.9
- * Mahalanobis distance carries VEER_ACT_OUT_OF_COVERAGE (fallback actions do not: they owe
- * nothing to the policy).
+ * Coverage. An action the policy computed for a state beyond the training p99.9 Mahalanobis
+ * distance carries VEER_ACT_OUT_OF_COVERAGE (fallback actions do not: they owe nothing to the
+ * policy); only that distance test (veer_drift_check) runs on this thread. Every valid state is
+ * also copied into a ring for the drift monitor (include/veer/drift.h), whose writer is the loop
+ * thread (veer__act_drain_states): the window statistics cost this thread nothing.
  *
  * Unknown channels. An act on a channel nobody has switched yet answers with the fallback action
  * and VEER_ACT_FALLBACK | VEER_ACT_NO_TASK, exactly like a channel that exists with no task: a
@@ -70,9 +71,17 @@ int veer__act_start(const veer__act_config *cfg, veer__act **out, veer_error *er
  * and exits; returns once it has. NULL allowed. Loop thread. */
 void veer__act_stop(veer__act *a);
 
-/* The drift monitor the act thread feeds with every valid act state (NULL when the bundle has
- * no training statistics). Read it only through veer_drift_snapshot, from another thread. */
+/* The drift monitor fed with every valid act state (NULL when the bundle has no training
+ * statistics, or with monitors off). Its writer is the thread that calls veer__act_drain_states;
+ * read it through veer_drift_snapshot. */
 struct veer_drift *veer__act_drift(veer__act *a);
+
+/* Adds up to `max` of the act states waiting in the ring to the drift monitor; returns how many.
+ * One thread only (veerd's loop), which thereby is the drift monitor's writer. */
+uint32_t veer__act_drain_states(veer__act *a, uint32_t max);
+
+/* States the ring could not take because the drain fell a whole ring behind. Any thread. */
+uint64_t veer__act_states_dropped(const veer__act *a);
 
 /* Arrival-to-reply times of act requests (ns), for the metrics endpoint: take intervals with
  * veer_hist_recorder_take from one other thread. */

@@ -181,6 +181,11 @@ static void render_counters(veer__metrics *m, const veer__metrics_extra *extra,
         if (n != 0)
             counter_u64(r, "veer_act_errors_total", "code", veer_errname(-code), n);
     }
+    family(
+        r, "veer_drift_states_dropped_total", "counter",
+        "Act states the drift monitor did not see because its updates fell a whole ring behind.");
+    counter_u64(r, "veer_drift_states_dropped_total", NULL, NULL,
+                m->cfg.act ? veer__act_states_dropped(m->cfg.act) : 0);
     family(r, "veer_deadline_bursts_total", "counter",
            "Bursts of deadline misses announced on the events socket.");
     counter_u64(r, "veer_deadline_bursts_total", NULL, NULL, extra ? extra->deadline_bursts : 0);

@@ -1,6 +1,7 @@
-/* The operators' side of veerd (see ops.h). One 100 ms timer samples the deadline-miss counter
- * for the burst detector and, every tenth time, moves the latency intervals into the metrics'
- * one-second slots. The HTTP handler answers three paths; everything else is 404. */
+/* The operators' side of veerd (see ops.h). One 100 ms timer moves the act states waiting in the
+ * act thread's ring into the drift monitor (this thread is its writer), samples the deadline-miss
+ * counter for the burst detector and, every tenth time, moves the latency intervals into the
+ * metrics' one-second slots. The HTTP handler answers three paths; everything else is 404. */
 #include "service/ops.h"
 
 #include <stdio.h>
@@ -28,6 +29,7 @@ struct veer__ops {
 static void on_tick(uv_timer_t *t)
 {
     veer__ops *o = t->data;
+    veer__act_drain_states(o->cfg.act, UINT32_MAX);
     veer__act_counters c;
     veer__act_counters_get(o->cfg.act, &c);
     uint32_t misses = 0;
@@ -48,6 +50,8 @@ static void handle(void *ctx, const char *path, veer__http_response *resp)
     veer__ops *o = ctx;
     o->extra.http_requests++;
     if (strcmp(path, "/metrics") == 0) {
+        veer__act_drain_states(o->cfg.act,
+                               UINT32_MAX); /* the drift figures include every act so far */
         veer__metrics_render(o->metrics, &o->extra, resp);
     } else if (strcmp(path, "/healthz") == 0) {
         veer__http_body_printf(resp, "alive\n");

@@ -1,6 +1,6 @@
 /* The operators' side of veerd: the HTTP endpoint (/metrics, /healthz, /readyz), the metrics it
- * renders, and the timer that turns the act thread's counters into events (bursts of deadline
- * misses). It reads the act thread only through its atomics, recorders and the drift monitor's
+ * renders, the drift monitor's updates from the act thread's state ring, and the timer that turns
+ * the act thread's counters into events (bursts of deadline misses). It reads the act thread only through its atomics, recorders and the drift monitor's
  * snapshots, so nothing here can make an act wait. Loop thread only. */
 #ifndef VEER_SERVICE_OPS_H
 #define VEER_SERVICE_OPS_H

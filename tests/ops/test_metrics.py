@@ -122,6 +122,7 @@ def test_metrics_after_a_known_sequence(lib, continuous_bundle, start):
 
     # Drift: the monitor's last published snapshot covers the first `taken` valid states; PSI
     # and mean shift over that window equal NumPy's.
+    assert v("veer_drift_states_dropped_total") == 0
     taken = int(v("veer_drift_states_total", scope="service"))
     assert 900 <= taken <= 1000, taken  # published every 100 states and on level changes
     window = np.array(sent[:taken])[-1000:]
