@@ -34,6 +34,16 @@ def drive(svc, s, n=600, far_feature=None):
         assert r.WhichOneof("body") == "act"
 
 
+def start_with_tasks(bundle, start):
+    """veerd with tasks "pick" and "place" stored and channel arm switched to pick."""
+    svc = start(bundle)
+    s, c = bundle.states, svc.c
+    c.put_samples("pick", s[:20], np.arange(20, dtype=np.float32))
+    c.put_samples("place", s[:20], -np.arange(20, dtype=np.float32))
+    c.switch("arm", "pick")
+    return svc, s, c
+
+
 def fmt_duration(seconds):
     """The CLI's duration format (clients/c/cli/cli_metrics.c), applied to the parser's value."""
     if seconds < 1e-6:
@@ -46,12 +56,7 @@ def fmt_duration(seconds):
 
 
 def test_top_in_tmux_shows_the_expected_fields(continuous_bundle, start, tmp_path):
-    svc = start(continuous_bundle)
-    s = continuous_bundle.states
-    c = svc.c
-    c.put_samples("pick", s[:20], np.arange(20, dtype=np.float32))
-    c.put_samples("place", s[:20], -np.arange(20, dtype=np.float32))
-    c.switch("arm", "pick")
+    svc, s, c = start_with_tasks(continuous_bundle, start)
     c.switch("lift", "place")
     drive(svc, s, 1200, far_feature=3)  # a full drift window with feature 3 far out
     samples, _ = scrape(svc.url)
@@ -130,12 +135,7 @@ def frames(path):
 
 
 def test_report_writes_a_valid_svg(continuous_bundle, start, tmp_path):
-    svc = start(continuous_bundle)
-    s = continuous_bundle.states
-    c = svc.c
-    c.put_samples("pick", s[:20], np.arange(20, dtype=np.float32))
-    c.put_samples("place", s[:20], -np.arange(20, dtype=np.float32))
-    c.switch("arm", "pick")
+    svc, s, c = start_with_tasks(continuous_bundle, start)
     rec, page = tmp_path / "rec.txt", tmp_path / "page.svg"
     proc = subprocess.Popen([VEER, "report", "--http", f"127.0.0.1:{svc.http_port}", "--seconds", "4",
                              "--interval", "0.5", "--record", str(rec), "-o", str(page)],
