@@ -231,10 +231,10 @@ int veer__train_export(const veer__trainer *t, const char *path, const char *set
         if (c->feature_names) {
             m->feature_names[i] = c->feature_names[i];
         } else {
-            char *s = ar_alloc(&ar, 16);
+            char *s = ar_alloc(&ar, 24);
             if (s == NULL)
                 goto oom;
-            snprintf(s, 16, "f%zu", i);
+            snprintf(s, 24, "f%zu", i);
             m->feature_names[i] = s;
         }
     }
