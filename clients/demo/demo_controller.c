@@ -11,8 +11,9 @@
  * only lets it correct sooner from fresher states; it never needs to know when the last decision
  * was. (The reverse, asking less often than the decision step, would be a different policy.)
  *
- * Midway the parcel becomes heavier: the dynamics change, the arm moves differently, and the
- * states veerd sees depart from the training distribution, which its drift monitor reports.
+ * Midway a far heavier parcel is on the gripper for a few seconds: the dynamics change, the arm
+ * cannot hold it and falls through states the training log never had, which veerd's drift
+ * monitor reports; then the parcel is taken off and the arm works as before.
  */
 #define _GNU_SOURCE
 #include <errno.h>
@@ -124,6 +125,8 @@ void *veer_demo_controller(void *arg)
         }
         if (tick == run->heavy_tick)
             veer_arm_set_parcel(&arm, run->opt.heavy_mass_kg, NULL);
+        if (tick == run->light_tick)
+            veer_arm_set_parcel(&arm, run->opt.light_mass_kg, NULL);
 
         veer_arm_observe(&arm, obs);
         rc = veer_client_act(client, run->opt.channel, obs, run->opt.deadline_us, action, &res,

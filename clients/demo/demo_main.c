@@ -39,8 +39,10 @@ static void usage(FILE *to)
             "  --http HOST:PORT     veerd's HTTP endpoint, for drift (default: none, drift n/a)\n"
             "  --duration S         seconds of control (default 35)\n"
             "  --switch-every S     seconds between task switches (default 5)\n"
-            "  --heavy-at S         when the parcel becomes heavier (default 0.6 x duration)\n"
-            "  --heavy-mass KG      the heavier parcel (default 3.0; the log's parcel is 0.5)\n"
+            "  --heavy-at S         when the parcel becomes heavier (default 12: the arm then\n"
+            "                       holds the far crate at arm's length)\n"
+            "  --heavy-mass KG      the heavier parcel (default 25; the log's parcel is 0.5)\n"
+            "  --heavy-for S        how long it stays on the gripper (default 6)\n"
             "  --deadline-us N      act deadline (default 700: inside the 1 ms tick)\n"
             "  --reach-samples      register reach tasks from reward samples, not goal states\n"
             "  --svg PATH           the report (default demo-report.svg)\n"
@@ -67,8 +69,13 @@ static int parse_args(int argc, char **argv, veer_demo_options *o)
     memset(o, 0, sizeof *o);
     o->duration_s = 35;
     o->switch_every_s = 5;
-    o->heavy_at_s = -1;
-    o->heavy_mass_kg = 3.0;
+    o->heavy_at_s = -1; /* 12 s, or 0.6 × a duration shorter than 15 s */
+    /* Measured with the shipped model's statistics (clients/demo/README.md): states leave the
+     * training coverage, and the exceedance alarm fires, only when the parcel is so heavy that
+     * the arm cannot hold it at arm's length and falls; up to about 15 kg it holds the parcel or
+     * swings through states the log covers. 25 kg leaves a margin over the ~20 kg threshold. */
+    o->heavy_mass_kg = 25.0;
+    o->heavy_until_s = 6.0; /* read as a duration; made absolute after parsing */
     o->deadline_us = 700;
     o->reach_goal = 1;
     o->svg = "demo-report.svg";
@@ -87,13 +94,17 @@ static int parse_args(int argc, char **argv, veer_demo_options *o)
             o->quiet = 1;
             continue;
         } else if (strcmp(a, "--bundle") == 0 || strcmp(a, "--act") == 0 ||
-                   strcmp(a, "--admin") == 0 || strcmp(a, "--http") == 0 || strcmp(a, "--svg") == 0) {
+                   strcmp(a, "--admin") == 0 || strcmp(a, "--http") == 0 ||
+                   strcmp(a, "--svg") == 0) {
             if (v == NULL || *v == '\0') {
                 fprintf(stderr, "veer-arm-demo: %s needs a value\n", a);
                 return -1;
             }
-            const char **slot = a[2] == 'b' ? &o->bundle : a[2] == 'h' ? &o->http
-                                : a[2] == 's' ? &o->svg : a[3] == 'c' ? &o->act : &o->admin;
+            const char **slot = a[2] == 'b'   ? &o->bundle
+                                : a[2] == 'h' ? &o->http
+                                : a[2] == 's' ? &o->svg
+                                : a[3] == 'c' ? &o->act
+                                              : &o->admin;
             *slot = v;
         } else if (strcmp(a, "--duration") == 0) {
             rc = parse_num(a, v, 1, 3600, &o->duration_s);
@@ -101,6 +112,8 @@ static int parse_args(int argc, char **argv, veer_demo_options *o)
             rc = parse_num(a, v, 0.5, 3600, &o->switch_every_s);
         } else if (strcmp(a, "--heavy-at") == 0) {
             rc = parse_num(a, v, 0, 3600, &o->heavy_at_s);
+        } else if (strcmp(a, "--heavy-for") == 0) {
+            rc = parse_num(a, v, 0, 3600, &o->heavy_until_s);
         } else if (strcmp(a, "--heavy-mass") == 0) {
             rc = parse_num(a, v, 0, 50, &o->heavy_mass_kg);
         } else if (strcmp(a, "--deadline-us") == 0) {
@@ -119,7 +132,8 @@ static int parse_args(int argc, char **argv, veer_demo_options *o)
         return -1;
     }
     if (o->heavy_at_s < 0)
-        o->heavy_at_s = 0.6 * o->duration_s;
+        o->heavy_at_s = o->duration_s >= 15 ? 12.0 : 0.6 * o->duration_s;
+    o->heavy_until_s += o->heavy_at_s;
     return 0;
 }
 
@@ -131,6 +145,7 @@ int main(int argc, char **argv)
     run.opt.light_mass_kg = run.params.parcel_mass;
     run.ticks = (long)(run.opt.duration_s * 1000.0 + 0.5);
     run.heavy_tick = (long)(run.opt.heavy_at_s * 1000.0 + 0.5);
+    run.light_tick = (long)(run.opt.heavy_until_s * 1000.0 + 0.5);
     if (veer_demo_run_alloc(&run) != 0) {
         fprintf(stderr, "veer-arm-demo: out of memory for %ld ticks\n", run.ticks);
         return EXIT_FAILED;
@@ -167,14 +182,15 @@ int main(int argc, char **argv)
         fallbacks += (run.flags[k] & VEER_ACT_FALLBACK) != 0;
     }
     printf("summary: %ld of %ld ticks, %ld deadline misses (%.2f %%), %ld fallbacks, %ld "
-           "overruns of the schedule\n",
-           done, run.ticks, misses, done ? 100.0 * misses / done : 0.0, fallbacks, run.overruns);
+           "overruns of the schedule; control thread at %s priority\n",
+           done, run.ticks, misses, done ? 100.0 * misses / done : 0.0, fallbacks, run.overruns,
+           run.realtime ? "real-time (SCHED_FIFO)" : "normal");
     if (run.opt.http) {
         if (run.drift_fired)
             printf("summary: drift alarm %.0f s after the parcel became heavier (t = %.0f s)\n",
                    run.drift_fired_s - run.opt.heavy_at_s, run.drift_fired_s);
         else
-            printf("summary: no drift alarm after the parcel became heavier\n");
+            printf("summary: no drift alarm while the heavy parcel was on\n");
     }
     int svg_rc = veer_demo_report_svg(&run, run.opt.svg);
     if (svg_rc == 0)

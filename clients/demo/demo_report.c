@@ -27,13 +27,15 @@ static void trajectory_panel(FILE *f, const veer_demo_run *run, int task, double
     double s = size / (2 * span);
 #define X(x) (px + ((x) + span) * s)
 #define Y(y) (py + (span - (y)) * s)
-    fprintf(f, "<g><rect x='%.1f' y='%.1f' width='%.1f' height='%.1f' fill='#fafafa' stroke='#ccc'/>\n",
-            px, py, size, size);
+    fprintf(
+        f, "<g><rect x='%.1f' y='%.1f' width='%.1f' height='%.1f' fill='#fafafa' stroke='#ccc'/>\n",
+        px, py, size, size);
     fprintf(f, "<text x='%.1f' y='%.1f' font-size='13' fill='%s'>%s</text>\n", px + 4, py + 15,
             task_colour[task], veer_arm_tasks[task].name);
     const veer_bench_zone *z = &veer_bench_keepout;
-    fprintf(f, "<rect x='%.1f' y='%.1f' width='%.1f' height='%.1f' fill='#f4cccc' stroke='#c00' "
-               "stroke-dasharray='3,2'/>\n",
+    fprintf(f,
+            "<rect x='%.1f' y='%.1f' width='%.1f' height='%.1f' fill='#f4cccc' stroke='#c00' "
+            "stroke-dasharray='3,2'/>\n",
             X(z->x_min), Y(z->y_max), (z->x_max - z->x_min) * s, (z->y_max - z->y_min) * s);
     fprintf(f, "<line x1='%.1f' y1='%.1f' x2='%.1f' y2='%.1f' stroke='#888'/>\n", X(-span),
             Y(VEER_BENCH_TOP_Y), X(span), Y(VEER_BENCH_TOP_Y));
@@ -50,7 +52,7 @@ static void trajectory_panel(FILE *f, const veer_demo_run *run, int task, double
     for (long i = 0; i < points && i < done; i++) {
         long tick = i * VEER_DEMO_TRACE_EVERY;
         int here = veer_demo_task_at_epoch(run, run->epoch[tick]) == task;
-        int heavy = tick >= run->heavy_tick;
+        int heavy = tick >= run->heavy_tick && tick < run->light_tick;
         if (open && (!here || heavy != open_heavy)) {
             fprintf(f, "'/>\n");
             open = 0;
@@ -89,11 +91,12 @@ static void latency_panel(FILE *f, const veer_demo_run *run, double px, double p
     }
     for (int b = 0; b <= NB; b++)
         maxc = counts[b] > maxc ? counts[b] : maxc;
-    fprintf(f, "<g><text x='%.1f' y='%.1f' font-size='14'>Act round trip (controller to veerd and "
-               "back), %ld acts, %ld past the %u us deadline</text>\n",
+    fprintf(f,
+            "<g><text x='%.1f' y='%.1f' font-size='14'>Act round trip (controller to veerd and "
+            "back), %ld acts, %ld past the %u us deadline</text>\n",
             px, py - 8, total, misses, run->opt.deadline_us);
-    fprintf(f, "<rect x='%.1f' y='%.1f' width='%.1f' height='%.1f' fill='none' stroke='#ccc'/>\n", px,
-            py, w, h);
+    fprintf(f, "<rect x='%.1f' y='%.1f' width='%.1f' height='%.1f' fill='none' stroke='#ccc'/>\n",
+            px, py, w, h);
     double bw = w / (NB + 1);
     for (int b = 0; b <= NB; b++) {
         if (counts[b] == 0)
@@ -106,25 +109,31 @@ static void latency_panel(FILE *f, const veer_demo_run *run, double px, double p
     for (int dec = 1; dec <= 5; dec++) {
         double x = px + (dec - 1) * 8 * bw;
         static const char *const lab[] = {"", "10 us", "100 us", "1 ms", "10 ms", "100 ms"};
-        fprintf(f, "<text x='%.1f' y='%.1f' font-size='11' fill='#555'>%s</text>\n", x,
-                py + h + 13, lab[dec]);
-        fprintf(f, "<line x1='%.1f' y1='%.1f' x2='%.1f' y2='%.1f' stroke='#ddd'/>\n", x, py, x, py + h);
+        fprintf(f, "<text x='%.1f' y='%.1f' font-size='11' fill='#555'>%s</text>\n", x, py + h + 13,
+                lab[dec]);
+        fprintf(f, "<line x1='%.1f' y1='%.1f' x2='%.1f' y2='%.1f' stroke='#ddd'/>\n", x, py, x,
+                py + h);
     }
     double dl = px + 8 * bw * (log10((double)run->opt.deadline_us) - 1.0);
-    fprintf(f, "<line x1='%.1f' y1='%.1f' x2='%.1f' y2='%.1f' stroke='#c00' stroke-dasharray='5,3'/>"
-               "<text x='%.1f' y='%.1f' font-size='11' fill='#c00'>deadline</text>\n",
+    fprintf(f,
+            "<line x1='%.1f' y1='%.1f' x2='%.1f' y2='%.1f' stroke='#c00' stroke-dasharray='5,3'/>"
+            "<text x='%.1f' y='%.1f' font-size='11' fill='#c00'>deadline</text>\n",
             dl, py, dl, py + h, dl + 3, py + 12);
-    fprintf(f, "<text x='%.1f' y='%.1f' font-size='11' fill='#555'>bar height: log(1 + count); "
-               "tallest %ld</text></g>\n", px + w - 210, py + 12, maxc);
+    fprintf(f,
+            "<text x='%.1f' y='%.1f' font-size='11' fill='#555'>bar height: log(1 + count); "
+            "tallest %ld</text></g>\n",
+            px + w - 210, py + 12, maxc);
 }
 
 static void drift_panel(FILE *f, const veer_demo_run *run, double px, double py, double w, double h)
 {
     double dur = run->opt.duration_s;
-    fprintf(f, "<g><text x='%.1f' y='%.1f' font-size='14'>Drift seen by veerd (read from /metrics "
-               "once a second)</text>\n", px, py - 8);
-    fprintf(f, "<rect x='%.1f' y='%.1f' width='%.1f' height='%.1f' fill='none' stroke='#ccc'/>\n", px,
-            py, w, h);
+    fprintf(f,
+            "<g><text x='%.1f' y='%.1f' font-size='14'>Drift seen by veerd (read from /metrics "
+            "once a second)</text>\n",
+            px, py - 8);
+    fprintf(f, "<rect x='%.1f' y='%.1f' width='%.1f' height='%.1f' fill='none' stroke='#ccc'/>\n",
+            px, py, w, h);
     /* Task bands along the top. */
     for (int i = 0; i < run->nswitches; i++) {
         double t0 = run->switches[i].tick / 1000.0;
@@ -133,17 +142,21 @@ static void drift_panel(FILE *f, const veer_demo_run *run, double px, double py,
                 px + w * t0 / dur, py, w * (t1 - t0) / dur, task_colour[run->switches[i].task]);
     }
     double hx = px + w * (run->heavy_tick / 1000.0) / dur;
-    fprintf(f, "<line x1='%.1f' y1='%.1f' x2='%.1f' y2='%.1f' stroke='#000' stroke-dasharray='5,3'/>"
-               "<text x='%.1f' y='%.1f' font-size='11'>parcel %.1f kg to %.1f kg</text>\n",
-            hx, py, hx, py + h, hx + 3, py + 22, run->opt.light_mass_kg, run->opt.heavy_mass_kg);
+    double lx = px + w * (run->light_tick / 1000.0) / dur;
+    if (lx > px + w)
+        lx = px + w;
+    fprintf(f, "<rect x='%.1f' y='%.1f' width='%.1f' height='%.1f' fill='#000' opacity='0.06'/>"
+               "<text x='%.1f' y='%.1f' font-size='11'>%.0f kg parcel</text>\n",
+            hx, py + 8, lx - hx, h - 8, hx + 3, py + 22, run->opt.heavy_mass_kg);
     /* Share of states beyond the training p99 distance, 0..max(10 %, observed). */
     double top = 0.10;
     for (int i = 0; i < run->ndrift; i++)
         if (run->drift[i].ok && run->drift[i].exceed_rate > top)
             top = run->drift[i].exceed_rate;
     double raise_y = py + h - h * 0.03 / top;
-    fprintf(f, "<line x1='%.1f' y1='%.1f' x2='%.1f' y2='%.1f' stroke='#c00' stroke-dasharray='2,2'/>"
-               "<text x='%.1f' y='%.1f' font-size='10' fill='#c00'>alarm at 3 %%</text>\n",
+    fprintf(f,
+            "<line x1='%.1f' y1='%.1f' x2='%.1f' y2='%.1f' stroke='#c00' stroke-dasharray='2,2'/>"
+            "<text x='%.1f' y='%.1f' font-size='10' fill='#c00'>alarm at 3 %%</text>\n",
             px, raise_y, px + w, raise_y, px + 3, raise_y - 2);
     fprintf(f, "<polyline fill='none' stroke='#c44e52' stroke-width='2' points='");
     for (int i = 0; i < run->ndrift; i++)
@@ -156,19 +169,24 @@ static void drift_panel(FILE *f, const veer_demo_run *run, double px, double py,
     for (int i = 0; i < run->ndrift; i++)
         if (run->drift[i].ok && run->drift[i].psi_max > ptop)
             ptop = run->drift[i].psi_max;
-    fprintf(f, "<polyline fill='none' stroke='#55a868' stroke-width='1.5' stroke-dasharray='6,3' points='");
+    fprintf(f, "<polyline fill='none' stroke='#55a868' stroke-width='1.5' stroke-dasharray='6,3' "
+               "points='");
     for (int i = 0; i < run->ndrift; i++)
         if (run->drift[i].ok)
             fprintf(f, "%.1f,%.1f ", px + w * run->drift[i].t_s / dur,
                     py + h - h * run->drift[i].psi_max / ptop);
     fprintf(f, "'/>\n");
-    fprintf(f, "<text x='%.1f' y='%.1f' font-size='11' fill='#c44e52'>solid: share of states "
-               "beyond the training p99 distance (top of box %.0f %%)</text>\n",
+    fprintf(f,
+            "<text x='%.1f' y='%.1f' font-size='11' fill='#c44e52'>solid: share of states "
+            "beyond the training p99 distance (top of box %.0f %%)</text>\n",
             px, py + h + 14, 100 * top);
-    fprintf(f, "<text x='%.1f' y='%.1f' font-size='11' fill='#55a868'>dashed: largest feature PSI "
-               "(top of box %.2f)</text>\n", px, py + h + 28, ptop);
-    fprintf(f, "<text x='%.1f' y='%.1f' font-size='11' fill='#555'>0 s</text><text x='%.1f' "
-               "y='%.1f' font-size='11' fill='#555'>%.0f s</text></g>\n",
+    fprintf(f,
+            "<text x='%.1f' y='%.1f' font-size='11' fill='#55a868'>dashed: largest feature PSI "
+            "(top of box %.2f)</text>\n",
+            px, py + h + 28, ptop);
+    fprintf(f,
+            "<text x='%.1f' y='%.1f' font-size='11' fill='#555'>0 s</text><text x='%.1f' "
+            "y='%.1f' font-size='11' fill='#555'>%.0f s</text></g>\n",
             px, py + h + 42, px + w - 24, py + h + 42, dur);
 }
 
@@ -180,23 +198,25 @@ int veer_demo_report_svg(const veer_demo_run *run, const char *path)
         return -1;
     }
     const double W = 1200, H = 960;
-    fprintf(f, "<?xml version='1.0' encoding='UTF-8'?>\n"
-               "<svg xmlns='http://www.w3.org/2000/svg' width='%.0f' height='%.0f' "
-               "viewBox='0 0 %.0f %.0f' font-family='sans-serif'>\n"
-               "<rect width='100%%' height='100%%' fill='white'/>\n",
+    fprintf(f,
+            "<?xml version='1.0' encoding='UTF-8'?>\n"
+            "<svg xmlns='http://www.w3.org/2000/svg' width='%.0f' height='%.0f' "
+            "viewBox='0 0 %.0f %.0f' font-family='sans-serif'>\n"
+            "<rect width='100%%' height='100%%' fill='white'/>\n",
             W, H, W, H);
     fprintf(f, "<text x='20' y='28' font-size='18'>veer demo: the sorting arm at 1 kHz, driven "
                "over ZeroMQ by the FB policy veerd serves</text>\n");
     fprintf(f, "<text x='20' y='48' font-size='12' fill='#555'>Gripper paths per task (metres, "
                "shoulder at the dot; circles: bins, the task's own filled; red box: keep-out "
-               "chute; dashed path: after the parcel became heavier)</text>\n");
+               "chute; dashed path: while the heavy parcel was on)</text>\n");
     double size = 270;
     for (int t = 0; t < VEER_ARM_TASK_COUNT; t++)
         trajectory_panel(f, run, t, 20 + (t % 4) * (size + 20), 60 + (t / 4) * (size + 12), size);
     /* Legend in the eighth slot. */
-    fprintf(f, "<g font-size='12'><text x='%.1f' y='%.1f'>Run: %.0f s, task switch every %.0f s,"
-               "</text><text x='%.1f' y='%.1f'>deadline %u us, %ld overruns of the 1 ms "
-               "schedule.</text><text x='%.1f' y='%.1f'>veer is not a safety system.</text></g>\n",
+    fprintf(f,
+            "<g font-size='12'><text x='%.1f' y='%.1f'>Run: %.0f s, task switch every %.0f s,"
+            "</text><text x='%.1f' y='%.1f'>deadline %u us, %ld overruns of the 1 ms "
+            "schedule.</text><text x='%.1f' y='%.1f'>veer is not a safety system.</text></g>\n",
             20 + 3 * (size + 20), 60 + size + 40, run->opt.duration_s, run->opt.switch_every_s,
             20 + 3 * (size + 20), 60 + size + 58, run->opt.deadline_us, run->overruns,
             20 + 3 * (size + 20), 60 + size + 76);

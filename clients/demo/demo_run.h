@@ -23,21 +23,21 @@
 
 typedef struct veer_demo_options {
     const char *bundle, *act, *admin, *http, *svg, *channel;
-    double duration_s, switch_every_s, heavy_at_s, heavy_mass_kg, light_mass_kg;
+    double duration_s, switch_every_s, heavy_at_s, heavy_until_s, heavy_mass_kg, light_mass_kg;
     uint32_t deadline_us;
     int reach_goal; /* 1: reach tasks registered from their goal state, 0: from reward samples */
     int quiet;
 } veer_demo_options;
 
 typedef struct veer_demo_switch {
-    long tick;     /* the first tick after the switch was acknowledged */
+    long tick; /* the first tick after the switch was acknowledged */
     uint64_t epoch;
-    int task;      /* index into veer_arm_tasks */
+    int task; /* index into veer_arm_tasks */
 } veer_demo_switch;
 
 typedef struct veer_demo_drift {
     double t_s;
-    int ok;             /* 0 when /metrics could not be read */
+    int ok; /* 0 when /metrics could not be read */
     double level, psi_max, psi_level, exceed_rate, exceed_level;
 } veer_demo_drift;
 
@@ -45,7 +45,7 @@ typedef struct veer_demo_run {
     veer_demo_options opt;
     veer_arm_params params;
     long ticks; /* planned ticks: duration × 1000 */
-    long heavy_tick;
+    long heavy_tick, light_tick; /* the heavy parcel is on the gripper for [heavy, light) */
 
     /* Written by the controller, one per tick. */
     uint32_t *latency_us;  /* round trip of the act call, µs */
@@ -54,9 +54,9 @@ typedef struct veer_demo_run {
     uint64_t *epoch;       /* the channel epoch of the reply (0 for a local fallback) */
     float *trace;          /* every VEER_DEMO_TRACE_EVERY ticks: the observation (8 floats) */
     _Atomic long ticks_done;
-    _Atomic int stop;      /* set by a signal or the supervisor: end the loop early */
-    long overruns;         /* ticks that started more than 5 ms late (the schedule is reset) */
-    int realtime;          /* the controller thread got SCHED_FIFO */
+    _Atomic int stop; /* set by a signal or the supervisor: end the loop early */
+    long overruns;    /* ticks that started more than 5 ms late (the schedule is reset) */
+    int realtime;     /* the controller thread got SCHED_FIFO */
     int controller_rc;
     char controller_msg[320];
 
@@ -65,7 +65,7 @@ typedef struct veer_demo_run {
     int nswitches;
     veer_demo_drift *drift; /* one per second */
     int ndrift;
-    int drift_fired;        /* the drift level reached WATCH or ALARM after the parcel changed */
+    int drift_fired; /* the drift level reached WATCH or ALARM after the parcel changed */
     double drift_fired_s;
 } veer_demo_run;
 

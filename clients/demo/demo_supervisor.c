@@ -80,8 +80,10 @@ int veer_demo_supervisor_setup(veer_demo_run *run)
                                      : VEER_DEMO_ENCODE_SAMPLES;
         veer_demo_task_spec spec;
         const veer_client_task *stored;
-        if ((rc = veer_demo_task_spec_build(bundle, task, &run->params, enc, 1, &spec, &err)) == 0) {
-            rc = veer_client_task_put(admin, task->name, &spec.spec, VEER_ARM_OBS_DIM, &stored, &err);
+        if ((rc = veer_demo_task_spec_build(bundle, task, &run->params, enc, 1, &spec, &err)) ==
+            0) {
+            rc = veer_client_task_put(admin, task->name, &spec.spec, VEER_ARM_OBS_DIM, &stored,
+                                      &err);
             veer_demo_task_spec_free(&spec);
         }
         if (rc) {
@@ -91,7 +93,8 @@ int veer_demo_supervisor_setup(veer_demo_run *run)
         }
         if (!run->opt.quiet) {
             if (enc == VEER_DEMO_ENCODE_GOAL)
-                printf("supervisor: task %-16s goal state (gripper at rest over the bin)\n", task->name);
+                printf("supervisor: task %-16s goal state (gripper at rest over the bin)\n",
+                       task->name);
             else
                 printf("supervisor: task %-16s %u reward samples, centred, R² %.2f\n", task->name,
                        stored->count, stored->r2);
@@ -137,9 +140,9 @@ static void status_line(veer_demo_run *run, long sec, uint32_t *scratch)
     for (long k = t0; k < t0 + n; k += VEER_DEMO_TRACE_EVERY) {
         int tk = run->epoch[k] ? veer_demo_task_at_epoch(run, run->epoch[k]) : -1;
         if (tk >= 0) {
-            reward += veer_arm_task_reward(&veer_arm_tasks[tk],
-                                           run->trace + (k / VEER_DEMO_TRACE_EVERY) * VEER_ARM_OBS_DIM,
-                                           NULL);
+            reward += veer_arm_task_reward(
+                &veer_arm_tasks[tk], run->trace + (k / VEER_DEMO_TRACE_EVERY) * VEER_ARM_OBS_DIM,
+                NULL);
             nreward++;
         }
     }
@@ -153,7 +156,8 @@ static void status_line(veer_demo_run *run, long sec, uint32_t *scratch)
                  level_name(d->exceed_level), 100.0 * d->exceed_rate, d->psi_max);
     else
         snprintf(drift, sizeof drift, "drift n/a");
-    if (d->ok && sec >= run->heavy_tick / 1000 && d->exceed_level >= 2 && !run->drift_fired) {
+    if (d->ok && sec >= run->heavy_tick / 1000 && sec <= run->light_tick / 1000 + 1 &&
+        d->exceed_level >= 2 && !run->drift_fired) {
         run->drift_fired = 1;
         run->drift_fired_s = d->t_s;
     }
@@ -169,7 +173,7 @@ int veer_demo_supervisor_loop(veer_demo_run *run)
     long seconds = run->ticks / 1000, next_sec = 0;
     long switch_every = (long)(run->opt.switch_every_s * 1000.0 + 0.5);
     long next_switch = switch_every;
-    int task = 0, heavy_told = 0;
+    int task = 0, heavy_told = 0, light_told = 0;
     const struct timespec poll = {0, 20 * 1000000L};
     while (next_sec < seconds) {
         long done = atomic_load_explicit(&run->ticks_done, memory_order_acquire);
@@ -182,7 +186,13 @@ int veer_demo_supervisor_loop(veer_demo_run *run)
         if (!heavy_told && done >= run->heavy_tick) {
             heavy_told = 1;
             printf("--- the parcel is now %.1f kg (was %.1f kg): the dynamics change; watch the "
-                   "drift ---\n", run->opt.heavy_mass_kg, run->opt.light_mass_kg);
+                   "drift ---\n",
+                   run->opt.heavy_mass_kg, run->opt.light_mass_kg);
+        }
+        if (!light_told && done >= run->light_tick) {
+            light_told = 1;
+            printf("--- the heavy parcel is off; the gripper holds %.1f kg again ---\n",
+                   run->opt.light_mass_kg);
         }
         if (done >= (next_sec + 1) * 1000) {
             status_line(run, next_sec, scratch);
