@@ -50,7 +50,7 @@ typedef struct veer_demo_fb_policy {
     float z[1024];
     uint32_t z_dim;
     uint64_t acts;
-    int record_first;      /* when set, the first act of the next episode is recorded below */
+    int record_first; /* when set, the first act of the next episode is recorded below */
     float first_state[VEER_ARM_OBS_DIM];
     float first_action[VEER_ARM_ACT_DIM];
 } veer_demo_fb_policy;

@@ -40,7 +40,8 @@ int veer_demo_metrics_drift(const char *hostport, veer_demo_drift *d)
 {
     char host[128], port[16];
     const char *colon = strrchr(hostport, ':');
-    if (colon == NULL || (size_t)(colon - hostport) >= sizeof host || strlen(colon + 1) >= sizeof port)
+    if (colon == NULL || (size_t)(colon - hostport) >= sizeof host ||
+        strlen(colon + 1) >= sizeof port)
         return -1;
     memcpy(host, hostport, (size_t)(colon - hostport));
     host[colon - hostport] = '\0';
@@ -63,7 +64,8 @@ int veer_demo_metrics_drift(const char *hostport, veer_demo_drift *d)
         char req[256];
         int n = snprintf(req, sizeof req, "GET /metrics HTTP/1.0\r\nHost: %s\r\n\r\n", hostport);
         ok = write(fd, req, (size_t)n) == n;
-        for (ssize_t r; ok && got < sizeof buf - 1 && (r = read(fd, buf + got, sizeof buf - 1 - got)) > 0;)
+        for (ssize_t r;
+             ok && got < sizeof buf - 1 && (r = read(fd, buf + got, sizeof buf - 1 - got)) > 0;)
             got += (size_t)r;
     }
     if (fd >= 0)
