@@ -145,6 +145,10 @@ static Veer__Bundle__Network *averaged_msg(arena *ar, const veer__nn *f1, const 
         return NULL;
     m->branches[0] = branch_msg(ar, f1, c1, c1->nlayers - 1);
     m->branches[1] = branch_msg(ar, f2, c2, c2->nlayers - 1);
+    if (m->branches[0] == NULL || m->branches[1] == NULL)
+        return NULL;
+    m->branches[0]->name = "first-head";
+    m->branches[1]->name = "second-head";
     m->merge = VEER__BUNDLE__MERGE_KIND__MERGE_CONCAT;
     veer__bundle__layer__init(lin);
     uint32_t in1 = l1->in, in2 = l2->in, out = l1->out;

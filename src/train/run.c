@@ -261,7 +261,7 @@ int veer__train_run(const veer_train_config *c, veer_error *err)
     }
     sigaction(SIGINT, &old_int, NULL);
     sigaction(SIGTERM, &old_term, NULL);
-    if (c->progress && t->step > first)
+    if (c->progress && tty && t->step > first)
         progress(t->step, c->steps, first, (double)(veer__now_ns() - t0) * 1e-9, &last, bellman,
                  tty, 1);
     if (c->progress && tty)
