@@ -33,7 +33,9 @@ typedef struct side {
     uint64_t *server; /* veerd's own time per act (ActReply.server_us, in ns) */
     size_t n;
     double *round_p50;
-    uint64_t cpus; /* CPUs veerd's threads were seen on */
+    uint64_t cpus;       /* CPUs veerd's threads were seen on */
+    uint64_t fallbacks;  /* acts not answered by the policy (left out of the figures) */
+    uint32_t last_flags; /* of the last such act: VEER_ACT_* flags, or -code << 16 */
 } side;
 
 static uint64_t rng = 0x9e3779b97f4a7c15ull;
@@ -146,8 +148,11 @@ static size_t run_acts(side *s, const float *states, uint32_t dim, size_t count,
     size_t ok = 0;
     for (size_t i = 0; i < count; i++) {
         const float *st = states + (size_t)((*k + i) % N_STATES) * dim;
-        if (veer_client_act(s->client, "bench", st, 100000, action, &r, NULL) == 0 &&
-            !(r.flags & VEER_ACT_FALLBACK)) {
+        int rc = veer_client_act(s->client, "bench", st, 100000, action, &r, NULL);
+        if (rc != 0 || (r.flags & VEER_ACT_FALLBACK)) {
+            s->fallbacks++;
+            s->last_flags = rc != 0 ? (uint32_t)-rc << 16 : r.flags;
+        } else {
             if (out != NULL) {
                 out[ok] = r.round_trip_ns;
                 server[ok] = (uint64_t)r.server_us * 1000u;
@@ -167,8 +172,8 @@ int main(int argc, char **argv)
                 "[ROUNDS] [PER_ROUND]\n");
         return 2;
     }
-    int rounds = argc > 8 ? atoi(argv[8]) : 20;
-    size_t per_round = argc > 9 ? (size_t)atol(argv[9]) : 2000;
+    int rounds = argc > 8 ? atoi(argv[8]) : 100;
+    size_t per_round = argc > 9 ? (size_t)atol(argv[9]) : 250;
     if (rounds < 1 || per_round < 100) {
         fprintf(stderr, "bench_overhead: ROUNDS >= 1 and PER_ROUND >= 100\n");
         return 2;
@@ -249,6 +254,8 @@ int main(int argc, char **argv)
         qsort(sides[s].rtt, sides[s].n, sizeof(uint64_t), cmp_u64);
         p50[s] = (double)pct(sides[s].rtt, sides[s].n, 50) / 1e3;
         p99[s] = (double)pct(sides[s].rtt, sides[s].n, 99) / 1e3;
+        printf("  %-13s fallbacks %llu (last flags 0x%x)\n", sides[s].name,
+               (unsigned long long)sides[s].fallbacks, sides[s].last_flags);
         printf("  %-13s acts %7zu   p50 %8.2f us   p90 %8.2f us   p99 %8.2f us\n", sides[s].name,
                sides[s].n, p50[s], (double)pct(sides[s].rtt, sides[s].n, 90) / 1e3, p99[s]);
     }

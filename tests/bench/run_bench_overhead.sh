@@ -7,8 +7,8 @@ set -eu
 here=$(cd "$(dirname "$0")" && pwd)
 src=$(cd "$here/../.." && pwd)
 build=$(cd "${1:-$src/build}" && pwd)
-rounds=${2:-20}
-per_round=${3:-2000}
+rounds=${2:-100}
+per_round=${3:-250}
 preset=${4:-standard}
 out="$build/bench"
 mkdir -p "$out"
