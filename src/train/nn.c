@@ -486,18 +486,20 @@ static int layer_forward(veer__nn *nn, veer__nn_layer *l, size_t n, const float 
         for (size_t r = 0; r < n; r++) {
             const float *xr = x + r * l->in;
             float *yr = y + r * l->out;
-            double mean = 0, var = 0;
+            /* Float sums (two passes, so no cancellation) vectorise; a row is a few hundred
+             * values, well within float's precision for a mean and a variance. */
+            float mean = 0, var = 0;
             for (uint32_t i = 0; i < l->in; i++)
                 mean += xr[i];
-            mean /= l->in;
+            mean /= (float)l->in;
             for (uint32_t i = 0; i < l->in; i++)
                 var += (xr[i] - mean) * (xr[i] - mean);
-            var /= l->in;
-            float rstd = (float)(1.0 / sqrt(var + l->eps));
-            l->aux[2 * r] = (float)mean;
+            var /= (float)l->in;
+            float rstd = 1.0f / sqrtf(var + l->eps);
+            l->aux[2 * r] = mean;
             l->aux[2 * r + 1] = rstd;
             for (uint32_t i = 0; i < l->in; i++)
-                yr[i] = w[i] * ((xr[i] - (float)mean) * rstd) + b[i];
+                yr[i] = w[i] * ((xr[i] - mean) * rstd) + b[i];
         }
         break;
     case VEER_NN_RESCALE_NORM: {
@@ -632,22 +634,22 @@ static void layer_backward(veer__nn *nn, veer__nn_layer *l, size_t n, const floa
         for (size_t r = 0; r < n; r++) {
             const float *xr = x + r * l->in, *dyr = dy + r * l->out;
             float mean = l->aux[2 * r], rstd = l->aux[2 * r + 1];
-            double m1 = 0, m2 = 0; /* mean(dX̂), mean(dX̂ ⊙ X̂) */
+            float m1 = 0, m2 = 0; /* mean(dX̂), mean(dX̂ ⊙ X̂) */
             for (uint32_t i = 0; i < l->in; i++) {
                 float xh = (xr[i] - mean) * rstd;
                 gw[i] += dyr[i] * xh;
                 gb[i] += dyr[i];
                 float dxh = dyr[i] * w[i];
                 m1 += dxh;
-                m2 += (double)dxh * xh;
+                m2 += dxh * xh;
             }
             if (dx) {
-                m1 /= l->in;
-                m2 /= l->in;
+                m1 /= (float)l->in;
+                m2 /= (float)l->in;
                 float *dxr = dx + r * l->in;
                 for (uint32_t i = 0; i < l->in; i++) {
                     float xh = (xr[i] - mean) * rstd;
-                    dxr[i] = rstd * (dyr[i] * w[i] - (float)m1 - xh * (float)m2);
+                    dxr[i] = rstd * (dyr[i] * w[i] - m1 - xh * m2);
                 }
             }
         }
