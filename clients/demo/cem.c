@@ -1,5 +1,6 @@
-/* Cross-entropy-method MPC for the demo arm (method, sources and choices in cem.h). Sequences
- * are stored as horizon × 2 torques, row-major, in buffers sized at create. */
+/* Cross-entropy-method MPC for the demo arm (method, sources and choices in cem.h). A plan is
+ * stored as its knots, knots × 2 residual torques row-major, in buffers sized at create; the
+ * torque at decision h is the linear interpolation between the knots around h. */
 #include "cem.h"
 
 #include <math.h>
@@ -14,15 +15,25 @@ struct veer_arm_cem {
     const veer_arm_task *task;
     veer__rng rng;
     int steps_per_decision;
-    int len;         /* horizon × 2 */
+    int knots;       /* ceil(horizon / knot_every) + 1 */
+    int len;         /* knots × 2 */
     double *mean;    /* len */
     double *sd;      /* len */
     double *samples; /* population × len */
     double *returns; /* population */
     int *order;      /* population, indices sorted by return */
     double *best;    /* len, best sequence of the current plan */
-    uint64_t plans, total_ns;
+    uint64_t plans, total_ns, cpu_ns;
 };
+
+/* CPU time of the calling thread: on a shared machine the wall time per plan depends on the
+ * neighbours, the CPU time does not. */
+static uint64_t thread_cpu_ns(void)
+{
+    struct timespec ts;
+    clock_gettime(CLOCK_THREAD_CPUTIME_ID, &ts);
+    return (uint64_t)ts.tv_sec * 1000000000u + (uint64_t)ts.tv_nsec;
+}
 
 void veer_arm_cem_config_default(veer_arm_cem_config *c)
 {
@@ -31,6 +42,7 @@ void veer_arm_cem_config_default(veer_arm_cem_config *c)
         .population = 200,
         .elites = 20,
         .iterations = 4,
+        .knot_every = 5,
         .decision_ms = 20,
         .plan_dt = 0.005,
         .initial_sd = 0.5,
@@ -54,6 +66,10 @@ static int check_config(const veer_arm_cem_config *c, veer_error *err)
     if (c->iterations < 1 || c->iterations > 100)
         return veer__error_set(err, VEER_EINVAL, "iterations",
                                "iterations must be 1 to 100, got %d", c->iterations);
+    if (c->knot_every < 1 || c->knot_every > c->horizon)
+        return veer__error_set(err, VEER_EINVAL, "knot_every",
+                               "knot_every must be 1 to the horizon (%d), got %d", c->horizon,
+                               c->knot_every);
     if (c->decision_ms < 1 || c->decision_ms > 1000)
         return veer__error_set(err, VEER_EINVAL, "decision_ms",
                                "decision_ms must be 1 to 1000, got %d", c->decision_ms);
@@ -62,6 +78,11 @@ static int check_config(const veer_arm_cem_config *c, veer_error *err)
         return veer__error_set(err, VEER_EINVAL, "plan_dt",
                                "plan_dt (%g s) must divide the decision step (%d ms)", c->plan_dt,
                                c->decision_ms);
+    if (c->plan_dt > VEER_ARM_CEM_MAX_PLAN_DT)
+        return veer__error_set(err, VEER_EINVAL, "plan_dt",
+                               "plan_dt (%g s) is over %g s: RK4 rollouts go unstable when a joint "
+                               "stop is pressed",
+                               c->plan_dt, VEER_ARM_CEM_MAX_PLAN_DT);
     if (!isfinite(c->initial_sd) || c->initial_sd <= 0.0)
         return veer__error_set(err, VEER_EINVAL, "initial_sd", "initial_sd must be positive");
     if (!isfinite(c->smoothing) || c->smoothing < 0.0 || c->smoothing >= 1.0)
@@ -83,7 +104,8 @@ int veer_arm_cem_create(const veer_arm_cem_config *c, const veer_arm_params *mod
     cem->c = *c;
     cem->model = *model;
     cem->task = task;
-    cem->len = 2 * c->horizon;
+    cem->knots = (c->horizon + c->knot_every - 1) / c->knot_every + 1;
+    cem->len = 2 * cem->knots;
     cem->steps_per_decision = (int)round((double)c->decision_ms * 1e-3 / c->plan_dt);
     size_t len = (size_t)cem->len, pop = (size_t)c->population;
     cem->mean = veer__malloc(len * sizeof(double));
@@ -121,7 +143,21 @@ void veer_arm_cem_reset(veer_arm_cem *cem)
         cem->mean[i] = 0.0;
 }
 
-/* Return of one torque sequence from (q, q̇): the reward of the state after each decision. */
+/* The residual torque of joint j at decision h (which may lie past the horizon: the last knot
+ * then holds). */
+static double residual_at(const veer_arm_cem *cem, const double *knots, int h, int j)
+{
+    int ke = cem->c.knot_every;
+    int k = h / ke;
+    if (k >= cem->knots - 1)
+        return knots[2 * (cem->knots - 1) + j];
+    double f = (double)(h % ke) / ke;
+    return (1.0 - f) * knots[2 * k + j] + f * knots[2 * (k + 1) + j];
+}
+
+/* Return of one plan from (q, q̇): the reward of the state after each decision. The torque is
+ * gravity feed-forward at the decision's start plus the plan's residual, held over the
+ * decision, as a controller with this model would apply it. */
 static double rollout(const veer_arm_cem *cem, const veer_arm *start, const double *seq)
 {
     veer_arm arm = *start;
@@ -130,8 +166,8 @@ static double rollout(const veer_arm_cem *cem, const veer_arm *start, const doub
     for (int h = 0; h < cem->c.horizon; h++) {
         double tau[2];
         veer_arm_gravity_torque(&arm, arm.q, tau);
-        tau[0] += seq[2 * h];
-        tau[1] += seq[2 * h + 1];
+        tau[0] += residual_at(cem, seq, h, 0);
+        tau[1] += residual_at(cem, seq, h, 1);
         for (int s = 0; s < cem->steps_per_decision; s++)
             veer_arm_step(&arm, tau, cem->c.plan_dt);
         veer_arm_observe(&arm, obs);
@@ -158,7 +194,7 @@ static void sort_by_return(const double *returns, int *order, int n)
 
 int veer_arm_cem_plan(veer_arm_cem *cem, const double q[2], const double qd[2], double torque[2])
 {
-    uint64_t t0 = veer__now_ns();
+    uint64_t t0 = veer__now_ns(), c0 = thread_cpu_ns();
     const veer_arm_cem_config *c = &cem->c;
     const double *tmax = cem->model.torque_max;
     veer_arm start;
@@ -202,13 +238,14 @@ int veer_arm_cem_plan(veer_arm_cem *cem, const double q[2], const double qd[2], 
     veer_arm_gravity_torque(&start, start.q, g);
     torque[0] = fmin(fmax(g[0] + cem->best[0], -tmax[0]), tmax[0]);
     torque[1] = fmin(fmax(g[1] + cem->best[1], -tmax[1]), tmax[1]);
-    /* Warm start for the next decision: the best sequence shifted by one decision, its last
-     * torque repeated. */
-    memmove(cem->mean, cem->best + 2, (size_t)(cem->len - 2) * sizeof(double));
-    cem->mean[cem->len - 2] = cem->best[cem->len - 2];
-    cem->mean[cem->len - 1] = cem->best[cem->len - 1];
+    /* Warm start for the next decision: the best plan shifted by one decision (each knot takes
+     * the best plan's value one decision later; the last knot holds). */
+    for (int k = 0; k < cem->knots; k++)
+        for (int j = 0; j < 2; j++)
+            cem->mean[2 * k + j] = residual_at(cem, cem->best, k * c->knot_every + 1, j);
     cem->plans++;
     cem->total_ns += veer__now_ns() - t0;
+    cem->cpu_ns += thread_cpu_ns() - c0;
     return 0;
 }
 
@@ -230,8 +267,10 @@ void veer_arm_cem_reset_cb(void *ctx)
     veer_arm_cem_reset(ctx);
 }
 
-void veer_arm_cem_timing(const veer_arm_cem *cem, uint64_t *plans, uint64_t *total_ns)
+void veer_arm_cem_timing(const veer_arm_cem *cem, uint64_t *plans, uint64_t *wall_ns,
+                         uint64_t *cpu_ns)
 {
     *plans = cem->plans;
-    *total_ns = cem->total_ns;
+    *wall_ns = cem->total_ns;
+    *cpu_ns = cem->cpu_ns;
 }

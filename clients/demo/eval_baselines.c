@@ -50,7 +50,8 @@ static void usage(FILE *to)
             "  --population N         planner samples per iteration (default 200)\n"
             "  --elites N             planner elites (default 20)\n"
             "  --iterations N         planner refits per decision (default 4)\n"
-            "  --plan-step-ms N       planner rollout step, divides 20 (default 5)\n"
+            "  --knot-every N         decisions between the planner's knots (default 5)\n"
+            "  --plan-step-ms N       planner rollout step, divides 20, at most 5 (default 5)\n"
             "  --initial-sd F         planner sampling spread, fraction of the torque limit\n"
             "                         (default 0.5)\n"
             "  --parcel-mass KG       parcel at the gripper (default 0.5)\n"
@@ -127,7 +128,7 @@ static int parse_args(int argc, char **argv, options *o)
     o->parcel_mass = 0.5;
     veer_arm_cem_config_default(&o->cem);
     long horizon = o->cem.horizon, population = o->cem.population, elites = o->cem.elites,
-         iterations = o->cem.iterations;
+         iterations = o->cem.iterations, knot_every = o->cem.knot_every;
     for (int i = 1; i < argc; i++) {
         const char *a = argv[i], *v = i + 1 < argc ? argv[i + 1] : NULL;
         int rc = 0, takes = 1;
@@ -152,8 +153,10 @@ static int parse_args(int argc, char **argv, options *o)
             rc = parse_long(a, v, 1, 100000, &elites);
         } else if (strcmp(a, "--iterations") == 0) {
             rc = parse_long(a, v, 1, 100, &iterations);
+        } else if (strcmp(a, "--knot-every") == 0) {
+            rc = parse_long(a, v, 1, 1000, &knot_every);
         } else if (strcmp(a, "--plan-step-ms") == 0) {
-            rc = parse_long(a, v, 1, 20, &o->plan_ms);
+            rc = parse_long(a, v, 1, 5, &o->plan_ms);
         } else if (strcmp(a, "--rng") == 0) {
             rc = parse_long(a, v, 0, LONG_MAX, &o->rng_key);
         } else if (strcmp(a, "--parcel-mass") == 0) {
@@ -191,13 +194,19 @@ static int parse_args(int argc, char **argv, options *o)
     o->cem.population = (int)population;
     o->cem.elites = (int)elites;
     o->cem.iterations = (int)iterations;
+    o->cem.knot_every = (int)knot_every;
+    if (knot_every > horizon) {
+        fprintf(stderr, "veer-arm-eval-baselines: --knot-every (%ld) exceeds --horizon (%ld)\n",
+                knot_every, horizon);
+        return -1;
+    }
     o->cem.plan_dt = (double)o->plan_ms * 1e-3;
     o->cem.rng_key = (uint64_t)o->rng_key;
     return 0;
 }
 
 typedef struct task_result {
-    double j_cem, j_random, ms_per_decision;
+    double j_cem, j_random, ms_per_decision, cpu_ms_per_decision;
     double cem_start[VEER_ARM_EVAL_START_COUNT], random_start[VEER_ARM_EVAL_START_COUNT];
 } task_result;
 
@@ -212,9 +221,10 @@ static int run_task(const options *o, const veer_arm_params *p, const veer_arm_t
         veer_arm_policy pol = {"cem", veer_arm_cem_act, veer_arm_cem_reset_cb, cem};
         rc = veer_arm_eval_policy(p, task, veer_arm_eval_starts, (int)o->starts, 1, &ep, &pol,
                                   &res->j_cem, res->cem_start, &err);
-        uint64_t plans, ns;
-        veer_arm_cem_timing(cem, &plans, &ns);
-        res->ms_per_decision = plans ? (double)ns / (double)plans * 1e-6 : 0.0;
+        uint64_t plans, wall, cpu;
+        veer_arm_cem_timing(cem, &plans, &wall, &cpu);
+        res->ms_per_decision = plans ? (double)wall / (double)plans * 1e-6 : 0.0;
+        res->cpu_ms_per_decision = plans ? (double)cpu / (double)plans * 1e-6 : 0.0;
         veer_arm_cem_destroy(cem);
     }
     if (rc == 0) {
@@ -244,6 +254,7 @@ static int write_json(const options *o, const veer_arm_params *p, const task_res
     cJSON_AddNumberToObject(cfg, "population", o->cem.population);
     cJSON_AddNumberToObject(cfg, "elites", o->cem.elites);
     cJSON_AddNumberToObject(cfg, "iterations", o->cem.iterations);
+    cJSON_AddNumberToObject(cfg, "knot_every", o->cem.knot_every);
     cJSON_AddNumberToObject(cfg, "plan_step_s", o->cem.plan_dt);
     cJSON *starts = cJSON_AddArrayToObject(root, "starts");
     for (int s = 0; s < o->starts; s++)
@@ -256,7 +267,8 @@ static int write_json(const options *o, const veer_arm_params *p, const task_res
         cJSON_AddStringToObject(e, "task", veer_arm_tasks[t].name);
         cJSON_AddNumberToObject(e, "cem_return", res[t].j_cem);
         cJSON_AddNumberToObject(e, "random_return", res[t].j_random);
-        cJSON_AddNumberToObject(e, "cem_ms_per_decision", res[t].ms_per_decision);
+        cJSON_AddNumberToObject(e, "cem_wall_ms_per_decision", res[t].ms_per_decision);
+        cJSON_AddNumberToObject(e, "cem_cpu_ms_per_decision", res[t].cpu_ms_per_decision);
         cJSON_AddItemToObject(e, "cem_per_start",
                               cJSON_CreateDoubleArray(res[t].cem_start, (int)o->starts));
         cJSON_AddItemToObject(e, "random_per_start",
@@ -289,15 +301,16 @@ int main(int argc, char **argv)
     task_result res[VEER_ARM_TASK_COUNT];
     memset(res, 0, sizeof res);
     if (!o.quiet)
-        printf("%-16s %10s %10s %14s\n", "task", "J_cem", "J_random", "cem ms/decision");
+        printf("%-16s %10s %10s %10s %10s  (planner time per decision)\n", "task", "J_cem",
+               "J_random", "wall ms", "cpu ms");
     for (int t = 0; t < VEER_ARM_TASK_COUNT; t++) {
         if (!o.task_on[t])
             continue;
         if (run_task(&o, &p, &veer_arm_tasks[t], &res[t]) != 0)
             return EXIT_REFUSED;
         if (!o.quiet) {
-            printf("%-16s %10.2f %10.2f %14.2f\n", veer_arm_tasks[t].name, res[t].j_cem,
-                   res[t].j_random, res[t].ms_per_decision);
+            printf("%-16s %10.2f %10.2f %10.2f %10.2f\n", veer_arm_tasks[t].name, res[t].j_cem,
+                   res[t].j_random, res[t].ms_per_decision, res[t].cpu_ms_per_decision);
             fflush(stdout);
         }
     }

@@ -30,11 +30,11 @@ const veer_arm_task *veer_arm_task_find(const char *name)
     return NULL;
 }
 
-static double reach_term(int bin, const float *obs)
+static double reach_term(int bin, const float *obs, double scale)
 {
     double dx = obs[VEER_ARM_GRIP_X] - veer_bench_bins[bin].x;
     double dy = obs[VEER_ARM_GRIP_Y] - veer_bench_bins[bin].y;
-    return exp(-sqrt(dx * dx + dy * dy) / VEER_ARM_REACH_SCALE);
+    return exp(-sqrt(dx * dx + dy * dy) / scale);
 }
 
 static double speed2(const float *obs)
@@ -49,7 +49,7 @@ double veer_arm_task_reward(const veer_arm_task *task, const float obs[VEER_ARM_
     (void)torque;
     switch (task->kind) {
     case VEER_ARM_TASK_REACH:
-        return reach_term(task->bin, obs);
+        return reach_term(task->bin, obs, VEER_ARM_REACH_SCALE);
     case VEER_ARM_TASK_KEEP_HIGH: {
         double h = (obs[VEER_ARM_GRIP_Y] + VEER_ARM_HEIGHT_SPAN) / (2.0 * VEER_ARM_HEIGHT_SPAN);
         return h < 0.0 ? 0.0 : (h > 1.0 ? 1.0 : h);
@@ -62,7 +62,7 @@ double veer_arm_task_reward(const veer_arm_task *task, const float obs[VEER_ARM_
         return d >= VEER_ARM_ZONE_MARGIN ? 1.0 : d / VEER_ARM_ZONE_MARGIN;
     }
     case VEER_ARM_TASK_SLOW_REACH:
-        return reach_term(task->bin, obs) -
+        return reach_term(task->bin, obs, VEER_ARM_SLOW_REACH_SCALE) -
                VEER_ARM_SLOW_PRICE * fmin(speed2(obs), VEER_ARM_SLOW_CAP);
     }
     return 0.0;

@@ -16,8 +16,10 @@
  *   keep_still        exp(−(‖q̇‖ / 0.5 rad/s)²).
  *   avoid_chute       min(1, dist_to_keepout_zone / 0.05 m): 0 inside the zone, full reward
  *                     5 cm clear of it, so the reward has a slope a planner can follow.
- *   slow_reach_<bin>  exp(−d / 0.10 m) − 0.02 min(‖q̇‖², 20): the reach reward with a price on
- *                     joint speed over the whole motion.
+ *   slow_reach_<bin>  exp(−d / 0.25 m) − 0.02 min(‖q̇‖², 20): a wider reach reward with a
+ *                     price on joint speed over the whole motion. Wider because with the
+ *                     narrow one, starting at rest far from the bin, every motion costs more
+ *                     within a planning horizon than it gains, and staying put wins.
  * The scales are design choices for the demo (no source).
  */
 #ifndef VEER_DEMO_TASKS_H
@@ -45,12 +47,13 @@ typedef struct veer_arm_task {
 #define VEER_ARM_TASK_COUNT 7
 extern const veer_arm_task veer_arm_tasks[VEER_ARM_TASK_COUNT];
 
-#define VEER_ARM_REACH_SCALE 0.10 /* m */
-#define VEER_ARM_HEIGHT_SPAN 0.65 /* m, l1 + l2 of the default arm */
-#define VEER_ARM_STILL_SCALE 0.5  /* rad/s */
-#define VEER_ARM_ZONE_MARGIN 0.05 /* m */
-#define VEER_ARM_SLOW_PRICE 0.02  /* per (rad/s)² */
-#define VEER_ARM_SLOW_CAP 20.0    /* (rad/s)² */
+#define VEER_ARM_REACH_SCALE 0.10      /* m */
+#define VEER_ARM_HEIGHT_SPAN 0.65      /* m, l1 + l2 of the default arm */
+#define VEER_ARM_STILL_SCALE 0.5       /* rad/s */
+#define VEER_ARM_ZONE_MARGIN 0.05      /* m */
+#define VEER_ARM_SLOW_REACH_SCALE 0.25 /* m */
+#define VEER_ARM_SLOW_PRICE 0.02       /* per (rad/s)² */
+#define VEER_ARM_SLOW_CAP 20.0         /* (rad/s)² */
 
 /* The task called `name`, or NULL. */
 const veer_arm_task *veer_arm_task_find(const char *name);

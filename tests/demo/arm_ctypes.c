@@ -1,9 +1,12 @@
 /* A flat C entry point over the demo arm for the Python reference tests (loaded with ctypes).
  * Parameters travel as one double vector in the order of PARAM_FIELDS below so the test sets
  * its own values instead of trusting the library's defaults. */
+#include <math.h>
 #include <string.h>
 
 #include "arm.h"
+#include "cem.h"
+#include "eval.h"
 #include "tasks.h"
 
 #define ARM_CTYPES_NPARAM 21
@@ -142,4 +145,95 @@ int arm_ctypes_task_goal(const char *name, const double *params, float *obs, cha
     int rc = veer_arm_task_goal(veer_arm_task_find(name), &p, obs, &err);
     strcpy(field, err.field);
     return rc;
+}
+
+static int zero_policy(void *ctx, const float *obs, float *torque)
+{
+    (void)ctx;
+    (void)obs;
+    torque[0] = torque[1] = 0.0f;
+    return 0;
+}
+
+static int nan_policy(void *ctx, const float *obs, float *torque)
+{
+    (void)ctx;
+    (void)obs;
+    torque[0] = 0.0f;
+    torque[1] = (float)NAN;
+    return 0;
+}
+
+/* One evaluation episode of the named task on the default arm from `start` with policy kind
+ * 0 zero torque, 1 random torques, 2 the CEM planner (default configuration), 3 a policy that
+ * returns NaN. Writes the return, and the observation after each decision to `trace` when not
+ * NULL. Returns the code; the error's field goes to `field`. */
+int arm_ctypes_episode(const char *task_name, const double *start, int decisions, int query_ms,
+                       int kind, unsigned long long key, double *ret, float *trace, char *field)
+{
+    veer_arm_params p;
+    veer_arm_params_default(&p);
+    veer_error err;
+    veer_error_clear(&err);
+    const veer_arm_task *task = veer_arm_task_find(task_name);
+    veer_arm_episode ep = {decisions, 20, query_ms};
+    veer_arm_random_policy rnd;
+    veer_arm_cem *cem = NULL;
+    veer_arm_policy pol = {"zero", zero_policy, NULL, NULL};
+    int rc = 0;
+    if (kind == 1) {
+        veer_arm_random_policy_init(&rnd, &p, key);
+        pol = (veer_arm_policy){"random", veer_arm_random_policy_act, NULL, &rnd};
+    } else if (kind == 2) {
+        veer_arm_cem_config c;
+        veer_arm_cem_config_default(&c);
+        c.rng_key = key;
+        rc = veer_arm_cem_create(&c, &p, task, &cem, &err);
+        pol = (veer_arm_policy){"cem", veer_arm_cem_act, veer_arm_cem_reset_cb, cem};
+    } else if (kind == 3) {
+        pol = (veer_arm_policy){"nan", nan_policy, NULL, NULL};
+    }
+    if (rc == 0)
+        rc = veer_arm_run_episode(&p, task, start, &ep, &pol, ret, trace, &err);
+    veer_arm_cem_destroy(cem);
+    strcpy(field, err.field);
+    return rc;
+}
+
+/* The CEM configuration check: sets one field (by name) to `value` in the default
+ * configuration and returns the create code; the error's field goes to `field`. */
+int arm_ctypes_cem_config(const char *name, double value, char *field)
+{
+    veer_arm_params p;
+    veer_arm_params_default(&p);
+    veer_arm_cem_config c;
+    veer_arm_cem_config_default(&c);
+    if (strcmp(name, "horizon") == 0)
+        c.horizon = (int)value;
+    else if (strcmp(name, "population") == 0)
+        c.population = (int)value;
+    else if (strcmp(name, "elites") == 0)
+        c.elites = (int)value;
+    else if (strcmp(name, "iterations") == 0)
+        c.iterations = (int)value;
+    else if (strcmp(name, "knot_every") == 0)
+        c.knot_every = (int)value;
+    else if (strcmp(name, "plan_dt") == 0)
+        c.plan_dt = value;
+    else if (strcmp(name, "initial_sd") == 0)
+        c.initial_sd = value;
+    else if (strcmp(name, "smoothing") == 0)
+        c.smoothing = value;
+    veer_error err;
+    veer_error_clear(&err);
+    veer_arm_cem *cem = NULL;
+    int rc = veer_arm_cem_create(&c, &p, &veer_arm_tasks[0], &cem, &err);
+    veer_arm_cem_destroy(cem);
+    strcpy(field, err.field);
+    return rc;
+}
+
+double arm_ctypes_normalised_score(double j, double j_random, double j_cem)
+{
+    return veer_arm_normalised_score(j, j_random, j_cem);
 }
