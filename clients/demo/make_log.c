@@ -113,6 +113,10 @@ static int parse_args(int argc, char **argv, log_options *o)
                 fprintf(stderr, "veer-arm-log: --out needs a folder\n");
                 return -1;
             }
+            if (strlen(v) > 3000) {
+                fprintf(stderr, "veer-arm-log: --out path is longer than 3000 characters\n");
+                return -1;
+            }
             o->out = v;
         } else if (strcmp(a, "--episodes") == 0) {
             rc = parse_long(a, v, 1, 1000000, &o->episodes);

@@ -179,6 +179,7 @@ def test_holding_segments_cover_slow_states_near_bins(tmp_path):
     (["--out", "X", "--rng"], "--rng"),
     (["--out", "X", "--episodes", "100000", "--length", "100000"], "over the limit"),
     (["--out", "X", "--frobnicate"], "unknown option"),
+    (["--out", "/tmp/" + "d" * 3100], "longer than 3000"),
 ])
 def test_bad_flags_are_usage_errors_naming_the_flag(tmp_path, args, needle):
     args = [str(tmp_path / "x") if a == "X" else a for a in args]
