@@ -8,13 +8,12 @@ PSI = sum_b (p_live,b - p_train,b) ln(p_live,b / p_train,b) (Yurdakul, "Statisti
 population stability index", 2018), with live shares floored at 1e-4 as include/veer/drift.h
 documents (common practice, no source); standardised mean shift (mean_live - mean_train) / std_train.
 """
-import time
+import urllib.error
 
 import numpy as np
 
 import harness
 import veerlib
-from harness import wire
 from metrics_text import get, scrape, value
 
 STAGES = ("decode", "policy", "reply", "total")
@@ -161,3 +160,41 @@ def test_readyz_healthz_and_monitors_off(continuous_bundle, start):
     assert "veer_act_stage_seconds_count" not in samples
     assert "veer_drift_psi" not in samples
     assert families["veer_drift_psi"].type == "gauge"  # the family is still announced
+
+
+def test_readyz_503_when_a_task_cannot_be_encoded(continuous_bundle, tmp_path):
+    """A journal holding a task the newly loaded model cannot encode (another state size) leaves
+    veerd alive but not ready, and /readyz names the task."""
+    from veer import bundle as vb
+    from veer import synth
+    m, _, other_states = synth.build_random(synth.preset_layout("small"), rng_key=5, n_states=300)
+    other = tmp_path / "other.veer"
+    vb.write_file_atomic(str(other), vb.pack_bundle(m))
+    assert np.asarray(other_states).shape[1] != continuous_bundle.states.shape[1]
+
+    state_dir = tmp_path / "state"
+    eps = harness.endpoints("tcp", tmp_path)
+    port = harness.free_port()
+    d = harness.Veerd(continuous_bundle.path, state_dir, eps, ("--http", f"127.0.0.1:{port}"))
+    c = harness.Client(eps)
+    try:
+        s = continuous_bundle.states
+        assert c.put_samples("pick", s[:20], np.arange(20, dtype=np.float32)).WhichOneof("body") == "task"
+    finally:
+        c.close()
+        assert d.stop() == 0
+    d = harness.Veerd(other, state_dir, eps, ("--http", f"127.0.0.1:{port}"))
+    try:
+        url = f"http://127.0.0.1:{port}"
+        assert get(url + "/healthz")[0] == 200
+        try:
+            get(url + "/readyz")
+            raise AssertionError("expected 503")
+        except urllib.error.HTTPError as e:
+            assert e.code == 503
+            body = e.read().decode()
+            assert body.startswith("not ready:") and "'pick'" in body, body
+        samples, _ = scrape(url)
+        assert value(samples, "veer_ready") == 0 and value(samples, "veer_tasks", state="failed") == 1
+    finally:
+        assert d.stop() == 0
