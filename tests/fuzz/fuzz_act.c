@@ -10,7 +10,9 @@
  * Beyond "no crash", it checks what every controller relies on: every request gets exactly one
  * reply, whose last frame decodes as a veer.wire.Reply of protocol 1 carrying an act, describe or error
  * body; an error has a negative code with its name; an act reply has action_dim finite actions
- * within the bundle's bounds (DESIGN.md invariant 4). */
+ * within the bundle's bounds (DESIGN.md invariant 4), and no deadline fallback unless the
+ * request asked for a deadline under 1 s (the server's default here is 2 s). */
+#include <errno.h>
 #include <math.h>
 #include <stdint.h>
 #include <stdio.h>
@@ -19,6 +21,7 @@
 
 #include <zmq.h>
 
+#include "base/base.h"
 #include "fuzz_common.h"
 #include "service/act.h"
 #include "service/channels.h"
@@ -31,6 +34,7 @@ static const veer_model_info *info;
 static void *zctx, *dealer;
 static veer__channels *channels;
 static veer__act *act;
+static uint64_t replies, describes; /* received, for telling a lost reply from an unanswered request */
 
 static void stop_all(void)
 {
@@ -75,7 +79,8 @@ static void start(void)
     atexit(stop_all);
 }
 
-static void check_reply(const uint8_t *buf, size_t len)
+/* deadline_us of the request: 0 means the server's default (2 s here). */
+static void check_reply(const uint8_t *buf, size_t len, uint32_t deadline_us)
 {
     Veer__Wire__Reply *r = veer__wire__reply__unpack(NULL, len, buf);
     if (r == NULL || r->protocol != 1) {
@@ -88,6 +93,7 @@ static void check_reply(const uint8_t *buf, size_t len)
             abort();
         break;
     case VEER__WIRE__REPLY__BODY_DESCRIBE:
+        describes++;
         if (r->describe->state_dim != info->state_dim)
             abort();
         break;
@@ -102,8 +108,8 @@ static void check_reply(const uint8_t *buf, size_t len)
                 (a->action[i] < info->action_low[i] || a->action[i] > info->action_high[i]))
                 abort();
         }
-        if ((a->flags & VEER_ACT_DEADLINE) != 0) {
-            fprintf(stderr, "fuzz_act: a deadline fallback with a 2 s deadline\n");
+        if ((a->flags & VEER_ACT_DEADLINE) != 0 && (deadline_us == 0 || deadline_us >= 1000000)) {
+            fprintf(stderr, "fuzz_act: a deadline fallback with a deadline of 1 s or more\n");
             abort();
         }
         break;
@@ -122,10 +128,24 @@ int LLVMFuzzerTestOneInput(const uint8_t *data, size_t size)
     /* libzmq drops a peer that sends more than twice the limit: that is its rule, not ours. */
     if (size > 2 * MAX_MESSAGE)
         return 0;
-    if (size >= 2 && data[0] == 0xfe) {
-        size_t frames = 1 + data[1] % 12, rest = size - 2, step = rest / frames;
+    /* The payload is the last frame; its deadline decides whether a fallback is a finding. */
+    const uint8_t *payload = data;
+    size_t payload_len = size, frames = 1, step = 0;
+    int multi = size >= 2 && data[0] == 0xfe;
+    if (multi) {
+        frames = 1 + data[1] % 12;
+        step = (size - 2) / frames;
+        payload = data + 2 + (frames - 1) * step;
+        payload_len = size - 2 - (frames - 1) * step;
+    }
+    uint32_t deadline_us = 0;
+    Veer__Wire__Request *req = veer__wire__request__unpack(NULL, payload_len, payload);
+    if (req != NULL && req->body_case == VEER__WIRE__REQUEST__BODY_ACT)
+        deadline_us = req->act->deadline_us;
+    veer__wire__request__free_unpacked(req, NULL);
+    if (multi) {
         for (size_t i = 0; i < frames; i++) {
-            size_t n = i + 1 == frames ? rest - i * step : step;
+            size_t n = i + 1 == frames ? payload_len : step;
             zmq_send(dealer, data + 2 + i * step, n, i + 1 == frames ? 0 : ZMQ_SNDMORE);
         }
     } else {
@@ -134,13 +154,25 @@ int LLVMFuzzerTestOneInput(const uint8_t *data, size_t size)
     /* The server echoes the frames before the payload as an envelope; the reply is the last. */
     zmq_msg_t reply;
     zmq_msg_init(&reply);
+    uint64_t t0 = veer__now_ns();
     do {
-        if (zmq_msg_recv(&reply, dealer, 0) < 0) {
-            fprintf(stderr, "fuzz_act: no reply within 10 s\n");
+        int got;
+        /* A signal (the leak checker stops every thread to scan memory) interrupts the wait. */
+        while ((got = zmq_msg_recv(&reply, dealer, 0)) < 0 && errno == EINTR && veer__now_ns() - t0 < 10000000000ull)
+            ;
+        if (got < 0) {
+            veer__act_counters c;
+            veer__act_counters_get(act, &c);
+            fprintf(stderr,
+                    "fuzz_act: no reply within 10 s to a %zu-byte request; %llu replies received before it; "
+                    "the act thread answered %llu (acts %llu + errors %llu + describes %llu)\n",
+                    size, (unsigned long long)replies, (unsigned long long)(c.acts + c.errors + describes),
+                    (unsigned long long)c.acts, (unsigned long long)c.errors, (unsigned long long)describes);
             abort();
         }
     } while (zmq_msg_more(&reply));
-    check_reply(zmq_msg_data(&reply), zmq_msg_size(&reply));
+    replies++;
+    check_reply(zmq_msg_data(&reply), zmq_msg_size(&reply), deadline_us);
     zmq_msg_close(&reply);
     return 0;
 }

@@ -12,6 +12,7 @@
  * decodes as a protocol 1 Reply whose id is the request's (when the request decoded) and whose
  * error, if any, has a negative code and its name; and that the journal replays to the same
  * number of tasks and channels as the running registry holds (DESIGN.md invariant 6). */
+#include <errno.h>
 #include <stdint.h>
 #include <stdio.h>
 #include <stdlib.h>
@@ -171,7 +172,10 @@ int LLVMFuzzerTestOneInput(const uint8_t *data, size_t size)
     }
     for (;;) {
         zmq_msg_init(&frames[n]);
-        zmq_msg_recv(&frames[n], dealer, 0);
+        while (zmq_msg_recv(&frames[n], dealer, 0) < 0) {
+            if (errno != EINTR) /* a signal (the leak checker's) may interrupt the wait */
+                abort();
+        }
         int more = zmq_msg_more(&frames[n]);
         if (n == 0 && (zmq_msg_size(&frames[0]) != 0 || !more)) {
             fprintf(stderr, "fuzz_admin: the reply lost its delimiter\n");

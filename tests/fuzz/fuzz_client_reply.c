@@ -17,6 +17,7 @@
  * (the sanitizers see a view that points past its reply), an act answers finite values within
  * the described bounds, and a describe leaves a model whose arrays have the documented
  * lengths. */
+#include <errno.h>
 #include <math.h>
 #include <pthread.h>
 #include <stdint.h>
@@ -132,7 +133,10 @@ static void *serve(void *arg)
             int n = 0;
             for (;;) {
                 zmq_msg_init(&frames[n]);
-                zmq_msg_recv(&frames[n], socks[s], 0);
+                while (zmq_msg_recv(&frames[n], socks[s], 0) < 0) {
+                    if (errno != EINTR) /* a signal (the leak checker's) may interrupt the wait */
+                        abort();
+                }
                 int more = zmq_msg_more(&frames[n]);
                 if (n < 7)
                     n++;
@@ -150,39 +154,37 @@ static void *serve(void *arg)
             int describe = req->body_case == VEER__WIRE__REQUEST__BODY_DESCRIBE;
             veer__wire__request__free_unpacked(req, NULL);
 
+            /* The input is copied while the lock is held: once the call returns, the driver
+             * frees it. */
             pthread_mutex_lock(&mu);
-            const uint8_t *body = pending;
-            size_t len = pending_len;
-            int flags = pending_flags;
+            int have = pending != NULL, flags = pending_flags;
+            size_t m = 0;
+            if (have) {
+                m = pending_len < sizeof out - 64 ? pending_len : sizeof out - 64;
+                memcpy(out, pending, m);
+            }
             pending = NULL;
             pthread_mutex_unlock(&mu);
-            size_t m;
-            if (body == NULL) {
+            if (!have) {
                 if (!describe)
                     abort(); /* only the open and the reset between inputs send unscripted requests */
                 m = describe_reply(id, out, sizeof out);
-            } else {
-                if (len > sizeof out - 64)
-                    len = sizeof out - 64;
-                memcpy(out, body, len);
-                m = len;
-                if (!(flags & 0x80)) {
-                    out[m++] = 0x10; /* field 2 (id), varint */
-                    m += put_varint(out + m, id);
-                    if (seq != 0 && !(flags & 0x40)) {
-                        uint8_t inner[16];
-                        size_t k = 0;
-                        inner[k++] = 0x08; /* ActReply field 1 (seq) */
-                        k += put_varint(inner + k, seq);
-                        out[m++] = 0x52; /* field 10 (act), length-delimited */
-                        out[m++] = (uint8_t)k;
-                        memcpy(out + m, inner, k);
-                        m += k;
-                    }
+            } else if (!(flags & 0x80)) {
+                out[m++] = 0x10; /* field 2 (id), varint */
+                m += put_varint(out + m, id);
+                if (seq != 0 && !(flags & 0x40)) {
+                    uint8_t inner[16];
+                    size_t k = 0;
+                    inner[k++] = 0x08; /* ActReply field 1 (seq) */
+                    k += put_varint(inner + k, seq);
+                    out[m++] = 0x52; /* field 10 (act), length-delimited */
+                    out[m++] = (uint8_t)k;
+                    memcpy(out + m, inner, k);
+                    m += k;
                 }
             }
             send_routed(socks[s], frames, n - 1, out, m);
-            if (body != NULL) {
+            if (have) {
                 m = error_reply(id, out);
                 send_routed(socks[s], frames, n - 1, out, m);
             }
