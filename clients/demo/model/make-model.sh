@@ -22,6 +22,7 @@ bin="$build/bin"
 steps_per_chunk="${CHUNK_STEPS:-3000}"
 chunks="${CHUNKS:-8}"
 budget="${TRAIN_BUDGET_S:-1770}" # 29.5 minutes of training
+zdim="${Z_DIM:-32}"
 cd "$work"
 # A fresh run: a checkpoint left from an earlier run would be resumed past the first chunks.
 rm -f train.ckpt curve.csv chunk-*.veer select.txt
@@ -29,7 +30,7 @@ rm -f train.ckpt curve.csv chunk-*.veer select.txt
 "$bin/veer-arm-log" --out log --rng 1 --episodes 400 --length 250 --decision-ms 20 --overwrite
 
 features=shoulder_sin,shoulder_cos,elbow_sin,elbow_cos,shoulder_vel,elbow_vel,gripper_x,gripper_y
-# d = 32, 256-wide F, B and actor, batch 256, learning rate 3e-4 (the trainer's "small" preset),
+# d = 32 (Z_DIM), 256-wide F, B and actor, batch 256, learning rate 3e-4 (the trainer's "small" preset),
 # 20 ms decisions and discount 0.98: a horizon of 1/(1-0.98) = 50 decisions = 1 s, longer than a
 # swing between bins (about 0.6 s) and short enough to learn.
 start=$(date +%s)
@@ -45,7 +46,7 @@ for i in $(seq 1 "$chunks"); do
     SOURCE_DATE_EPOCH=1764633600 "$bin/veer" train \
         --states log/states.npy --actions log/actions.npy --next-states log/next_states.npy \
         --dones log/dones.npy --continuous -12:12,-6:6 --step 0.02 --features "$features" \
-        --preset small --z-dim 32 --hidden 256 --b-hidden 256 --batch 256 --discount 0.98 \
+        --preset small --z-dim "$zdim" --hidden 256 --b-hidden 256 --batch 256 --discount 0.98 \
         --seed 1 --threads 1 --eval-every 500 --checkpoint-every 1000 \
         --fallback 0,0 --model-version "parcel-arm-s$steps" \
         --checkpoint train.ckpt --curve curve.csv --steps "$steps" --out "chunk-$steps.veer" --quiet
