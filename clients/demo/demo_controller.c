@@ -129,6 +129,7 @@ void *veer_demo_controller(void *arg)
             veer_arm_set_parcel(&arm, run->opt.light_mass_kg, NULL);
 
         veer_arm_observe(&arm, obs);
+        res.round_trip_ns = 0; /* not every refusal gets as far as timing the call */
         rc = veer_client_act(client, run->opt.channel, obs, run->opt.deadline_us, action, &res,
                              &err);
         if (rc == 0) {

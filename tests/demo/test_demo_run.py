@@ -154,3 +154,29 @@ def test_fb_evaluation_numbers_come_from_the_served_policy(tmp_path):
         np.testing.assert_allclose(got.action, action_eval, atol=2e-3 * 12)
     finally:
         v.stop()
+
+
+def test_bad_inputs_get_clear_refusals(tmp_path):
+    """Each tool refuses a bad flag or file with a message naming it (common practice)."""
+    r = subprocess.run([os.path.join(BIN, "veer-arm-demo"), "--bundle", BUNDLE, "--act",
+                        "ipc:///nonexistent/act", "--admin", "ipc:///nonexistent/admin",
+                        "--duration", "0"], capture_output=True, text=True, timeout=30)
+    assert r.returncode == 2 and "--duration" in r.stderr
+    r = subprocess.run([os.path.join(BIN, "veer-arm-demo"), "--act", "x", "--admin", "y"],
+                       capture_output=True, text=True, timeout=30)
+    assert r.returncode == 2 and "--bundle" in r.stderr
+
+    other = tmp_path / "other.json"
+    other.write_text(json.dumps({"decisions": 5, "query_ms": 20, "parcel_mass_kg": 0.5,
+                                 "starts": [[0.0, 0.0, 0.0, 0.0]] * 5, "tasks": []}))
+    r = subprocess.run([os.path.join(BIN, "veer-arm-fb-eval"), "--bundle", BUNDLE,
+                        "--baselines", str(other)], capture_output=True, text=True, timeout=30)
+    assert r.returncode == 1 and "starts[0][0]" in r.stderr
+    shipped = os.path.join(SOURCE, "clients", "demo", "model", "baselines.json")
+    r = subprocess.run([os.path.join(BIN, "veer-arm-fb-eval"), "--bundle", str(other),
+                        "--baselines", shipped], capture_output=True, text=True, timeout=30)
+    assert r.returncode == 1 and "VEER_" in r.stderr and str(other) in r.stderr
+    r = subprocess.run([os.path.join(BIN, "veer-arm-fb-eval"), "--bundle", BUNDLE,
+                        "--baselines", str(other), "--query-ms", "50"],
+                       capture_output=True, text=True, timeout=30)
+    assert r.returncode == 2 and "--query-ms" in r.stderr
