@@ -44,6 +44,22 @@ def start_with_tasks(bundle, start):
     return svc, s, c
 
 
+def histogram_quantile(samples, name, q, **labels):
+    """Quantile from cumulative buckets, interpolated linearly within the bucket where the rank
+    falls (the method of Prometheus's histogram_quantile, from its documentation)."""
+    buckets = sorted((float(dict(k)["le"]), v) for k, v in samples[name + "_bucket"].items()
+                     if all(dict(k).get(a) == b for a, b in labels.items()))
+    rank = q * buckets[-1][1]
+    lower, below = 0.0, 0.0
+    for le, cum in buckets:
+        if cum >= rank:
+            if le == float("inf"):
+                return lower
+            return lower + (le - lower) * ((rank - below) / (cum - below) if cum > below else 1.0)
+        lower, below = le, cum
+    return buckets[-1][0]
+
+
 def fmt_duration(seconds):
     """The CLI's duration format (clients/c/cli/cli_metrics.c), applied to the parser's value."""
     if seconds < 1e-6:
@@ -84,7 +100,9 @@ def test_top_in_tmux_shows_the_expected_fields(continuous_bundle, start, tmp_pat
     plain = re.sub(r"\x1b\[[0-9;]*[A-Za-z]", "", screen)
     assert "veer top" in plain and "model continuous-random" in plain and "ready" in plain, plain
     assert re.search(rf"\bacts {acts}\b", plain), plain
-    assert re.search(r"^arm\s+pick\s+[-0-9.nan]+\s+1200\s+1$", plain, re.M), plain
+    row = re.search(r"^arm\s+pick\s+[-0-9.nan]+\s+1200\s+1\s+(\S+)$", plain, re.M)
+    assert row, plain
+    assert row.group(1) == fmt_duration(histogram_quantile(samples, "veer_channel_act_seconds", 0.99, channel="arm"))
     assert re.search(r"^lift\s+place\s+", plain, re.M), plain
     # The percentiles shown equal what an independent parser reads, formatted the CLI's way.
     for stage in ("decode", "policy", "reply", "total"):

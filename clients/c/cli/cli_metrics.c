@@ -393,3 +393,21 @@ void veer_cli_duration(double seconds, char *out, size_t cap)
     else
         snprintf(out, cap, "%.2fs", seconds);
 }
+
+/* The value at quantile q from cumulative bucket counts, interpolated inside its bucket (the
+ * usual estimate from a bucketed histogram). */
+double veer_cli_bucket_quantile(const double *le, const double *cum, size_t n, double q)
+{
+    if (n == 0 || cum[n - 1] <= 0)
+        return NAN;
+    double rank = q * cum[n - 1];
+    for (size_t i = 0; i < n; i++) {
+        if (cum[i] >= rank) {
+            double lo = i ? le[i - 1] : 0, below = i ? cum[i - 1] : 0;
+            if (isinf(le[i]))
+                return lo;
+            return lo + (le[i] - lo) * (cum[i] > below ? (rank - below) / (cum[i] - below) : 1);
+        }
+    }
+    return le[n - 1];
+}

@@ -62,6 +62,11 @@ int veer_cli_metrics_get2(const veer_cli_metrics *m, const char *name, const cha
 size_t veer_cli_metrics_buckets(const veer_cli_metrics *m, const char *name, const char *key,
                                 const char *value, double *le, double *cumulative, size_t cap);
 
+/* The value at quantile q (0..1) from `n` cumulative bucket counts with upper bounds `le`
+ * (ascending, +Inf last), interpolated linearly inside the bucket where the rank falls, the usual
+ * estimate from a bucketed histogram (as Prometheus's histogram_quantile). NaN when empty. */
+double veer_cli_bucket_quantile(const double *le, const double *cumulative, size_t n, double q);
+
 /* A duration in seconds as text with a unit: "850ns", "12.3us", "1.20ms", "1.50s"; "inf" for +Inf
  * and "-" for NaN. */
 void veer_cli_duration(double seconds, char *out, size_t cap);

@@ -271,24 +271,6 @@ static const char *const STAGES[] = {"decode", "policy", "reply", "total"};
 static const char *const COLORS[] = {"#1f77b4", "#d62728", "#2ca02c", "#9467bd",
                                      "#ff7f0e", "#8c564b", "#e377c2", "#17becf"};
 
-/* The value at quantile q from cumulative bucket counts, interpolated inside its bucket (the
- * usual estimate from a bucketed histogram). */
-static double bucket_quantile(const double *le, const double *cum, size_t n, double q)
-{
-    if (n == 0 || cum[n - 1] <= 0)
-        return NAN;
-    double rank = q * cum[n - 1];
-    for (size_t i = 0; i < n; i++) {
-        if (cum[i] >= rank) {
-            double lo = i ? le[i - 1] : 0, below = i ? cum[i - 1] : 0;
-            if (isinf(le[i]))
-                return lo;
-            return lo + (le[i] - lo) * (cum[i] > below ? (rank - below) / (cum[i] - below) : 1);
-        }
-    }
-    return le[n - 1];
-}
-
 static void latency_histograms(FILE *out, const recording *r, double top)
 {
     const veer_cli_metrics *first = &r->f[0].m, *last = &r->f[r->n - 1].m;
@@ -339,8 +321,8 @@ static void latency_histograms(FILE *out, const recording *r, double top)
                     text(out, bx + bw / 2, top + PANEL_H + 12, "middle", 8, "%s", label);
             }
             char p50[32], p99[32];
-            veer_cli_duration(bucket_quantile(le, cum, n, 0.5), p50, sizeof p50);
-            veer_cli_duration(bucket_quantile(le, cum, n, 0.99), p99, sizeof p99);
+            veer_cli_duration(veer_cli_bucket_quantile(le, cum, n, 0.5), p50, sizeof p50);
+            veer_cli_duration(veer_cli_bucket_quantile(le, cum, n, 0.99), p99, sizeof p99);
             text(out, x0 + w - 4, top + 14, "end", 10, "n %.0f  p50 ~%s  p99 ~%s", cum[n - 1], p50,
                  p99);
         }

@@ -136,11 +136,28 @@ static void render_header(screen *s, const char *address, const veer_cli_metrics
         get(cur, "veer_deadline_bursts_total", NULL, NULL));
 }
 
+/* A channel's p99 act time from its histogram buckets: over the last interval, or since start
+ * when the interval had no act (NaN without a histogram: channels past the first 16). */
+static double channel_p99(const veer_cli_metrics *cur, const veer_cli_metrics *prev, const char *ch)
+{
+    double le[MAX_BUCKETS], now[MAX_BUCKETS], ble[MAX_BUCKETS], before[MAX_BUCKETS];
+    size_t n = veer_cli_metrics_buckets(cur, "veer_channel_act_seconds", "channel", ch, le, now,
+                                        MAX_BUCKETS);
+    size_t nb = prev ? veer_cli_metrics_buckets(prev, "veer_channel_act_seconds", "channel", ch,
+                                                ble, before, MAX_BUCKETS)
+                     : 0;
+    if (n > 0 && nb == n && now[n - 1] > before[n - 1]) {
+        for (size_t i = 0; i < n; i++)
+            now[i] -= before[i];
+    }
+    return veer_cli_bucket_quantile(le, now, n, 0.99);
+}
+
 static void render_channels(screen *s, const veer_cli_metrics *cur, const veer_cli_metrics *prev,
                             double dt)
 {
-    put(s, "%s%-24s %-28s %10s %12s %9s%s\n", sgr(s, "\033[7m"), "CHANNEL", "TASK", "ACTS/S",
-        "ACTS", "SWITCHES", RESET(s));
+    put(s, "%s%-24s %-28s %10s %12s %9s %9s%s\n", sgr(s, "\033[7m"), "CHANNEL", "TASK", "ACTS/S",
+        "ACTS", "SWITCHES", "p99", RESET(s));
     int rows = 0;
     for (size_t i = 0; i < cur->n; i++) {
         const veer_cli_sample *smp = &cur->samples[i];
@@ -153,8 +170,10 @@ static void render_channels(screen *s, const veer_cli_metrics *cur, const veer_c
         double acts = get(cur, "veer_channel_acts_total", "channel", ch);
         double before = prev ? get(prev, "veer_channel_acts_total", "channel", ch) : NAN;
         double rate = isfinite(before) ? (acts - before) / dt : NAN;
-        put(s, "%-24.24s %-28.28s %10.1f %12.0f %9.0f\n", ch, task[0] ? task : "(none)", rate, acts,
-            get(cur, "veer_channel_switches_total", "channel", ch));
+        char p99[32];
+        veer_cli_duration(channel_p99(cur, prev, ch), p99, sizeof p99);
+        put(s, "%-24.24s %-28.28s %10.1f %12.0f %9.0f %9s\n", ch, task[0] ? task : "(none)", rate,
+            acts, get(cur, "veer_channel_switches_total", "channel", ch), p99);
         rows++;
     }
     if (rows == 0)
