@@ -105,6 +105,27 @@ static int task_check_options(const veer_model_info *info, const veer_task_spec 
     return 0;
 }
 
+/* The index of the first NaN or infinity in x, or n. The states can be millions of floats, so
+ * blocks are first tested branch-free on the exponent bits (a loop the compiler vectorises)
+ * and only a block that holds one is searched. */
+static size_t task_first_nonfinite(const float *x, size_t n)
+{
+    for (size_t start = 0; start < n; start += 4096) {
+        size_t end = n - start < 4096 ? n : start + 4096;
+        uint32_t bad = 0;
+        for (size_t i = start; i < end; i++) {
+            uint32_t u;
+            memcpy(&u, &x[i], sizeof u);
+            bad |= (u & 0x7f800000u) == 0x7f800000u;
+        }
+        if (bad)
+            for (size_t i = start; i < end; i++)
+                if (!isfinite(x[i]))
+                    return i;
+    }
+    return n;
+}
+
 static int task_check_inputs(const veer_model_info *info, const veer_task_spec *spec,
                              task_plan *plan, veer_error *err)
 {
@@ -151,9 +172,8 @@ static int task_check_inputs(const veer_model_info *info, const veer_task_spec *
     }
     if (spec->states != NULL) {
         size_t total = (size_t)spec->count * info->state_dim;
-        for (size_t k = 0; k < total; k++) {
-            if (isfinite(spec->states[k]))
-                continue;
+        size_t k = task_first_nonfinite(spec->states, total);
+        if (k < total) {
             char field[48];
             size_t row = k / info->state_dim, col = k % info->state_dim;
             snprintf(field, sizeof field, "states[%zu][%zu]", row, col);
