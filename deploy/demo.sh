@@ -18,7 +18,7 @@ while [ $# -gt 0 ]; do
         --duration) duration="$2"; shift 2 ;;
         --build-dir) build="$2"; shift 2 ;;
         --svg) svg="$2"; shift 2 ;;
-        -h|--help) sed -n '2,9p' "$0"; exit 0 ;;
+        -h|--help) sed -n '2,10p' "$0"; exit 0 ;;
         *) echo "demo.sh: unknown option '$1' (see --help)" >&2; exit 2 ;;
     esac
 done
