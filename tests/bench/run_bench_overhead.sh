@@ -2,7 +2,9 @@
 # Starts two veerd on 127.0.0.1 (free ports, temporary state directories) serving a random-weight
 # bundle (veer.synth preset, default standard), one with --monitors 1 and one with --monitors 0, runs bench_overhead
 # against both in the same run, and stops both by process id.
-#   Usage: run_bench_overhead.sh [BUILD_DIR] [ROUNDS] [PER_ROUND] [PRESET]
+#   Usage: run_bench_overhead.sh [BUILD_DIR] [ROUNDS] [PER_ROUND] [PRESET] [FIRST_MONITORS]
+# FIRST_MONITORS 0 runs both services with monitors off: the A/A run that shows how far the two
+# processes differ on this machine with nothing different between them (the noise floor).
 set -eu
 here=$(cd "$(dirname "$0")" && pwd)
 src=$(cd "$here/../.." && pwd)
@@ -10,6 +12,7 @@ build=$(cd "${1:-$src/build}" && pwd)
 rounds=${2:-100}
 per_round=${3:-250}
 preset=${4:-standard}
+first_monitors=${5:-1}
 out="$build/bench"
 mkdir -p "$out"
 export PYTHONPATH="$build/python:$src/clients/python"
@@ -41,7 +44,7 @@ start() { # name monitors act admin events
         i=$((i + 1)); [ $i -lt 200 ] || { cat "$work/$1.log"; exit 1; }; sleep 0.05
     done
 }
-start on 1 "$1" "$2" "$3"
+start on "$first_monitors" "$1" "$2" "$3"
 on_pid=$(echo $pids | awk '{print $1}')
 start off 0 "$4" "$5" "$6"
 off_pid=$(echo $pids | awk '{print $2}')
