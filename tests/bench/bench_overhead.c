@@ -202,7 +202,10 @@ int main(int argc, char **argv)
                 (float)(info->state_mean[j] + g * sqrt(info->state_cov[(size_t)j * dim + j]));
         }
     }
-    side sides[2] = {{.name = "monitors on", .pid = atol(argv[3])},
+    /* The A/A run (both services with monitors off) names its first service itself. */
+    const char *first =
+        getenv("VEER_BENCH_FIRST_LABEL") ? getenv("VEER_BENCH_FIRST_LABEL") : "monitors on";
+    side sides[2] = {{.name = first, .pid = atol(argv[3])},
                      {.name = "monitors off", .pid = atol(argv[6])}};
     if (states == NULL || open_side(&sides[0], argv[1], argv[2], states, dim) != 0 ||
         open_side(&sides[1], argv[4], argv[5], states, dim) != 0)

@@ -13,6 +13,9 @@ rounds=${2:-100}
 per_round=${3:-250}
 preset=${4:-standard}
 first_monitors=${5:-1}
+if [ "$first_monitors" = 0 ]; then
+    export VEER_BENCH_FIRST_LABEL="off (A/A)"
+fi
 out="$build/bench"
 mkdir -p "$out"
 export PYTHONPATH="$build/python:$src/clients/python"
