@@ -51,6 +51,13 @@ void veer_arm_cem_config_default(veer_arm_cem_config *c)
     };
 }
 
+void veer_arm_cem_config_for_task(const veer_arm_task *task, veer_arm_cem_config *c)
+{
+    veer_arm_cem_config_default(c);
+    if (task != NULL && task->kind == VEER_ARM_TASK_SLOW_REACH)
+        c->horizon = 40;
+}
+
 static int check_config(const veer_arm_cem_config *c, veer_error *err)
 {
     if (c->horizon < 1 || c->horizon > 1000)

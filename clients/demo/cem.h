@@ -56,9 +56,13 @@ typedef struct veer_arm_cem_config {
  * population 200, 20 elites, 4 iterations, 20 ms decisions, 5 ms rollout steps, initial sd 0.5
  * of the limit, smoothing 0.1. Chosen by trying a few settings on the suite: a free torque per
  * decision (no knots) left the planner unable to damp a swing in 4 iterations; a 1 s horizon
- * reached the bins less precisely (about 8% lower returns) but is needed on slow_reach_near
- * from the far raised-left start, where within 0.6 s moving off a held pose never pays. */
+ * reached the bins less precisely (about 8% lower returns). */
 void veer_arm_cem_config_default(veer_arm_cem_config *c);
+
+/* The default, tuned for one task: slow_reach_* plans 40 decisions ahead (0.8 s). With 0.6 s,
+ * from the raised-left start far from the bin, moving off the held pose never pays within the
+ * horizon and the planner stays put (return 3 of about 200); 0.8 s solves every start. */
+void veer_arm_cem_config_for_task(const veer_arm_task *task, veer_arm_cem_config *c);
 
 typedef struct veer_arm_cem veer_arm_cem;
 

@@ -26,7 +26,8 @@ typedef struct options {
     int task_on[VEER_ARM_TASK_COUNT];
     long starts, decisions, query_ms, repeats, rng_key, plan_ms;
     double parcel_mass;
-    veer_arm_cem_config cem;
+    int horizon;             /* 0: veer_arm_cem_config_for_task's */
+    veer_arm_cem_config cem; /* the other planner settings, from the flags */
     const char *json;
     int quiet;
 } options;
@@ -46,7 +47,8 @@ static void usage(FILE *to)
             "  --decisions N          decisions per episode, 20 ms each (default 250)\n"
             "  --query-ms N           ms between policy queries, 1 to 20 (default 20)\n"
             "  --random-repeats N     episodes per start for random torques (default 5)\n"
-            "  --horizon N            planner horizon in decisions (default 30)\n"
+            "  --horizon N            planner horizon in decisions, all tasks (default 30,\n"
+            "                         slow_reach_* 40)\n"
             "  --population N         planner samples per iteration (default 200)\n"
             "  --elites N             planner elites (default 20)\n"
             "  --iterations N         planner refits per decision (default 4)\n"
@@ -127,7 +129,7 @@ static int parse_args(int argc, char **argv, options *o)
     o->plan_ms = 5;
     o->parcel_mass = 0.5;
     veer_arm_cem_config_default(&o->cem);
-    long horizon = o->cem.horizon, population = o->cem.population, elites = o->cem.elites,
+    long horizon = 0, population = o->cem.population, elites = o->cem.elites,
          iterations = o->cem.iterations, knot_every = o->cem.knot_every;
     for (int i = 1; i < argc; i++) {
         const char *a = argv[i], *v = i + 1 < argc ? argv[i + 1] : NULL;
@@ -190,14 +192,16 @@ static int parse_args(int argc, char **argv, options *o)
                 elites, population);
         return -1;
     }
-    o->cem.horizon = (int)horizon;
+    o->horizon = (int)horizon; /* 0: each task's own */
     o->cem.population = (int)population;
     o->cem.elites = (int)elites;
     o->cem.iterations = (int)iterations;
     o->cem.knot_every = (int)knot_every;
-    if (knot_every > horizon) {
-        fprintf(stderr, "veer-arm-eval-baselines: --knot-every (%ld) exceeds --horizon (%ld)\n",
-                knot_every, horizon);
+    /* Without --horizon, the shortest per-task horizon is the default one. */
+    long shortest = horizon > 0 ? horizon : o->cem.horizon;
+    if (knot_every > shortest) {
+        fprintf(stderr, "veer-arm-eval-baselines: --knot-every (%ld) exceeds the horizon (%ld)\n",
+                knot_every, shortest);
         return -1;
     }
     o->cem.plan_dt = (double)o->plan_ms * 1e-3;
@@ -207,6 +211,7 @@ static int parse_args(int argc, char **argv, options *o)
 
 typedef struct task_result {
     double j_cem, j_random, ms_per_decision, cpu_ms_per_decision;
+    int horizon;
     double cem_start[VEER_ARM_EVAL_START_COUNT], random_start[VEER_ARM_EVAL_START_COUNT];
 } task_result;
 
@@ -216,7 +221,12 @@ static int run_task(const options *o, const veer_arm_params *p, const veer_arm_t
     veer_arm_episode ep = {(int)o->decisions, 20, (int)o->query_ms};
     veer_error err;
     veer_arm_cem *cem;
-    int rc = veer_arm_cem_create(&o->cem, p, task, &cem, &err);
+    veer_arm_cem_config c = o->cem;
+    veer_arm_cem_config tuned;
+    veer_arm_cem_config_for_task(task, &tuned);
+    c.horizon = o->horizon ? o->horizon : tuned.horizon;
+    res->horizon = c.horizon;
+    int rc = veer_arm_cem_create(&c, p, task, &cem, &err);
     if (rc == 0) {
         veer_arm_policy pol = {"cem", veer_arm_cem_act, veer_arm_cem_reset_cb, cem};
         rc = veer_arm_eval_policy(p, task, veer_arm_eval_starts, (int)o->starts, 1, &ep, &pol,
@@ -250,7 +260,6 @@ static int write_json(const options *o, const veer_arm_params *p, const task_res
     cJSON_AddNumberToObject(root, "parcel_mass_kg", p->parcel_mass);
     cJSON_AddNumberToObject(root, "random_repeats", (double)o->repeats);
     cJSON *cfg = cJSON_AddObjectToObject(root, "cem");
-    cJSON_AddNumberToObject(cfg, "horizon", o->cem.horizon);
     cJSON_AddNumberToObject(cfg, "population", o->cem.population);
     cJSON_AddNumberToObject(cfg, "elites", o->cem.elites);
     cJSON_AddNumberToObject(cfg, "iterations", o->cem.iterations);
@@ -265,6 +274,7 @@ static int write_json(const options *o, const veer_arm_params *p, const task_res
             continue;
         cJSON *e = cJSON_CreateObject();
         cJSON_AddStringToObject(e, "task", veer_arm_tasks[t].name);
+        cJSON_AddNumberToObject(e, "cem_horizon", res[t].horizon);
         cJSON_AddNumberToObject(e, "cem_return", res[t].j_cem);
         cJSON_AddNumberToObject(e, "random_return", res[t].j_random);
         cJSON_AddNumberToObject(e, "cem_wall_ms_per_decision", res[t].ms_per_decision);

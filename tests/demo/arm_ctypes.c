@@ -186,7 +186,7 @@ int arm_ctypes_episode(const char *task_name, const double *start, int decisions
         pol = (veer_arm_policy){"random", veer_arm_random_policy_act, NULL, &rnd};
     } else if (kind == 2) {
         veer_arm_cem_config c;
-        veer_arm_cem_config_default(&c);
+        veer_arm_cem_config_for_task(task, &c);
         c.rng_key = key;
         rc = veer_arm_cem_create(&c, &p, task, &cem, &err);
         pol = (veer_arm_policy){"cem", veer_arm_cem_act, veer_arm_cem_reset_cb, cem};
