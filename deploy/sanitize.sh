@@ -10,8 +10,9 @@
 #   VEER_JOBS                           parallel build and test jobs (default 2)
 #   VEER_TSAN_TESTS                     ctest -R pattern of the threaded tests (default below)
 #
-# Tests that load libveer into Debian's Python through ctypes need the sanitizer runtime loaded
-# first, so the Python tests run with it preloaded; under ASan leak checking is off for them only
+# Tests that load libveer into a program built without the sanitizer (Debian's Python through
+# ctypes; the install test's pkg-config program) need the sanitizer runtime loaded first, so the
+# Python and install tests run with it preloaded; under ASan leak checking is off for them only
 # (the interpreter itself keeps memory to exit) and stays on for every C test. Exit status: 0
 # when every selected suite passed.
 set -euo pipefail
@@ -38,10 +39,10 @@ run_asan() {
   asan_rt=$("$cc" -print-file-name=libasan.so)
   echo "sanitize: C tests under ASan + UBSan (leak checking on)"
   ASAN_OPTIONS=${ASAN_OPTIONS:-detect_leaks=1:abort_on_error=1} \
-    ctest --test-dir "$asan_dir" --output-on-failure -j"$jobs" -LE python || status=1
-  echo "sanitize: Python tests with the ASan runtime preloaded (leak checking off)"
+    ctest --test-dir "$asan_dir" --output-on-failure -j"$jobs" -LE 'python|install' || status=1
+  echo "sanitize: Python and install tests with the ASan runtime preloaded (leak checking off)"
   LD_PRELOAD="$asan_rt" ASAN_OPTIONS=detect_leaks=0:abort_on_error=1 \
-    ctest --test-dir "$asan_dir" --output-on-failure -j"$jobs" -L python || status=1
+    ctest --test-dir "$asan_dir" --output-on-failure -j"$jobs" -L 'python|install' || status=1
 }
 
 run_tsan() {
