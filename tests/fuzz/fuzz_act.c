@@ -8,9 +8,9 @@
  * controller does, which also covers the receive and reply framing.
  *
  * Beyond "no crash", it checks what every controller relies on: every request gets exactly one
- * reply, whose last frame decodes as a veer.wire.Reply of protocol 1 carrying an act, describe or error
- * body; an error has a negative code with its name; an act reply has action_dim finite actions
- * within the bundle's bounds (DESIGN.md invariant 4), and no deadline fallback unless the
+ * reply, whose last frame decodes as a veer.wire.Reply of protocol 1 carrying an act, describe or
+ * error body; an error has a negative code with its name; an act reply has action_dim finite
+ * actions within the bundle's bounds (DESIGN.md invariant 4), and no deadline fallback unless the
  * request asked for a deadline under 1 s (the server's default here is 2 s). */
 #include <errno.h>
 #include <math.h>
@@ -34,7 +34,8 @@ static const veer_model_info *info;
 static void *zctx, *dealer;
 static veer__channels *channels;
 static veer__act *act;
-static uint64_t replies, describes; /* received, for telling a lost reply from an unanswered request */
+static uint64_t replies,
+    describes; /* received, for telling a lost reply from an unanswered request */
 
 static void stop_all(void)
 {
@@ -64,7 +65,8 @@ static void start(void)
                             .endpoint = "inproc://fuzz-act",
                             .bundle = bundle,
                             .channels = channels,
-                            .default_deadline_us = 2000000, /* generous: a fallback here is a finding */
+                            .default_deadline_us =
+                                2000000, /* generous: a fallback here is a finding */
                             .max_message_bytes = MAX_MESSAGE};
     if (veer__act_start(&cfg, &act, &err) != 0) {
         fprintf(stderr, "fuzz_act: %s\n", err.message);
@@ -158,16 +160,19 @@ int LLVMFuzzerTestOneInput(const uint8_t *data, size_t size)
     do {
         int got;
         /* A signal (the leak checker stops every thread to scan memory) interrupts the wait. */
-        while ((got = zmq_msg_recv(&reply, dealer, 0)) < 0 && errno == EINTR && veer__now_ns() - t0 < 10000000000ull)
+        while ((got = zmq_msg_recv(&reply, dealer, 0)) < 0 && errno == EINTR &&
+               veer__now_ns() - t0 < 10000000000ull)
             ;
         if (got < 0) {
             veer__act_counters c;
             veer__act_counters_get(act, &c);
             fprintf(stderr,
-                    "fuzz_act: no reply within 10 s to a %zu-byte request; %llu replies received before it; "
+                    "fuzz_act: no reply within 10 s to a %zu-byte request; %llu replies received "
+                    "before it; "
                     "the act thread answered %llu (acts %llu + errors %llu + describes %llu)\n",
-                    size, (unsigned long long)replies, (unsigned long long)(c.acts + c.errors + describes),
-                    (unsigned long long)c.acts, (unsigned long long)c.errors, (unsigned long long)describes);
+                    size, (unsigned long long)replies,
+                    (unsigned long long)(c.acts + c.errors + describes), (unsigned long long)c.acts,
+                    (unsigned long long)c.errors, (unsigned long long)describes);
             abort();
         }
     } while (zmq_msg_more(&reply));

@@ -96,7 +96,10 @@ static void start(void)
     inputs_since_start = 0;
 }
 
-static void stopped(void *flag) { *(int *)flag = 1; }
+static void stopped(void *flag)
+{
+    *(int *)flag = 1;
+}
 
 static void stop(void)
 {
@@ -117,9 +120,12 @@ static void stop(void)
     close_store(&store);
     veer__store again;
     open_store(&again);
-    if (veer__registry_count(again.registry) != tasks || veer__channels_count(again.channels) != channels) {
-        fprintf(stderr, "fuzz_admin: the journal replays %u tasks and %u channels; veerd held %u and %u\n",
-                veer__registry_count(again.registry), veer__channels_count(again.channels), tasks, channels);
+    if (veer__registry_count(again.registry) != tasks ||
+        veer__channels_count(again.channels) != channels) {
+        fprintf(stderr,
+                "fuzz_admin: the journal replays %u tasks and %u channels; veerd held %u and %u\n",
+                veer__registry_count(again.registry), veer__channels_count(again.channels), tasks,
+                channels);
         abort();
     }
     close_store(&again);
@@ -191,9 +197,11 @@ int LLVMFuzzerTestOneInput(const uint8_t *data, size_t size)
     }
     if (n != 2)
         abort();
-    Veer__Wire__Reply *r = veer__wire__reply__unpack(NULL, zmq_msg_size(&frames[1]), zmq_msg_data(&frames[1]));
+    Veer__Wire__Reply *r =
+        veer__wire__reply__unpack(NULL, zmq_msg_size(&frames[1]), zmq_msg_data(&frames[1]));
     if (r == NULL || r->protocol != 1 || (decodes && r->id != id) ||
-        r->body_case == VEER__WIRE__REPLY__BODY__NOT_SET || r->body_case == VEER__WIRE__REPLY__BODY_ACT) {
+        r->body_case == VEER__WIRE__REPLY__BODY__NOT_SET ||
+        r->body_case == VEER__WIRE__REPLY__BODY_ACT) {
         fprintf(stderr, "fuzz_admin: a reply that is not a protocol 1 Reply to request %llu\n",
                 (unsigned long long)id);
         abort();

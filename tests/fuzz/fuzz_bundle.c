@@ -42,7 +42,8 @@ static void act_once(const veer_bundle *b)
                 (action[i] < in->action_low[i] || action[i] > in->action_high[i]))
                 abort();
             if (in->action_kind == VEER_ACTION_DISCRETE &&
-                (action[i] < 0 || action[i] >= (float)in->action_count || action[i] != floorf(action[i])))
+                (action[i] < 0 || action[i] >= (float)in->action_count ||
+                 action[i] != floorf(action[i])))
                 abort();
         }
         if (!isfinite(value))
@@ -59,15 +60,16 @@ int LLVMFuzzerTestOneInput(const uint8_t *data, size_t size)
     veer_bundle *b = NULL;
     veer_error err;
     int rc;
-    if (size >= VEER__BUNDLE_MAGIC_LEN && memcmp(data, VEER_BUNDLE_MAGIC, VEER__BUNDLE_MAGIC_LEN) == 0) {
+    if (size >= VEER__BUNDLE_MAGIC_LEN &&
+        memcmp(data, VEER_BUNDLE_MAGIC, VEER__BUNDLE_MAGIC_LEN) == 0) {
         rc = veer_bundle_open_mem(data, size, &b, &err);
     } else {
         uint8_t digest[VEER_DIGEST_BYTES];
         uint8_t *framed = NULL;
         size_t framed_len = 0;
         if (veer__digest(data, size, digest) != 0 ||
-            veer__bundle_frame(data, size, VEER_BUNDLE_FORMAT_VERSION, digest, sizeof digest, &framed,
-                               &framed_len, &err) != 0)
+            veer__bundle_frame(data, size, VEER_BUNDLE_FORMAT_VERSION, digest, sizeof digest,
+                               &framed, &framed_len, &err) != 0)
             abort();
         rc = veer_bundle_open_mem(framed, framed_len, &b, &err);
         veer__free(framed);

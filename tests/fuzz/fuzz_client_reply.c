@@ -39,7 +39,8 @@ static pthread_t server_thread;
 static char act_ep[300], admin_ep[300];
 
 static pthread_mutex_t mu = PTHREAD_MUTEX_INITIALIZER;
-static const uint8_t *pending;  /* the reply body for the next request; NULL: the fixture's describe */
+static const uint8_t
+    *pending; /* the reply body for the next request; NULL: the fixture's describe */
 static size_t pending_len;
 static int pending_flags;
 static int server_stop;
@@ -145,8 +146,8 @@ static void *serve(void *arg)
                 if (!more)
                     break;
             }
-            Veer__Wire__Request *req =
-                veer__wire__request__unpack(NULL, zmq_msg_size(&frames[n - 1]), zmq_msg_data(&frames[n - 1]));
+            Veer__Wire__Request *req = veer__wire__request__unpack(
+                NULL, zmq_msg_size(&frames[n - 1]), zmq_msg_data(&frames[n - 1]));
             if (req == NULL)
                 abort(); /* the client always sends a decodable request */
             uint64_t id = req->id;
@@ -167,7 +168,8 @@ static void *serve(void *arg)
             pthread_mutex_unlock(&mu);
             if (!have) {
                 if (!describe)
-                    abort(); /* only the open and the reset between inputs send unscripted requests */
+                    abort(); /* only the open and the reset between inputs send unscripted requests
+                              */
                 m = describe_reply(id, out, sizeof out);
             } else if (!(flags & 0x80)) {
                 out[m++] = 0x10; /* field 2 (id), varint */
@@ -240,7 +242,8 @@ static void start(void)
 }
 
 static volatile uint64_t sink;
-static volatile double sink_f; /* floats are summed as floats: a negative one cast to an integer is undefined */
+static volatile double
+    sink_f; /* floats are summed as floats: a negative one cast to an integer is undefined */
 
 static void read_string(const char *s)
 {
@@ -300,9 +303,10 @@ int LLVMFuzzerTestOneInput(const uint8_t *data, size_t size)
             for (uint32_t i = 0; i < m->action_dim; i++) {
                 if (!isfinite(action[i]))
                     abort();
-                if (m->action_low != NULL && (action[i] < m->action_low[i] || action[i] > m->action_high[i])) {
-                    fprintf(stderr, "fuzz_client_reply: action[%u] = %g outside [%g, %g]\n", i, action[i],
-                            m->action_low[i], m->action_high[i]);
+                if (m->action_low != NULL &&
+                    (action[i] < m->action_low[i] || action[i] > m->action_high[i])) {
+                    fprintf(stderr, "fuzz_client_reply: action[%u] = %g outside [%g, %g]\n", i,
+                            action[i], m->action_low[i], m->action_high[i]);
                     abort();
                 }
             }

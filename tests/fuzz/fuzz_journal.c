@@ -38,8 +38,8 @@ typedef struct state {
     veer__journal *journal;
     veer__journal_replay rep;
     uint32_t tasks, channels;
-    uint32_t with_task;       /* channels with an active task */
-    uint64_t epoch_sum;       /* of every channel, for the strict check */
+    uint32_t with_task; /* channels with an active task */
+    uint64_t epoch_sum; /* of every channel, for the strict check */
 } state;
 
 static void put_u32(uint8_t *p, uint32_t v)
@@ -66,7 +66,8 @@ static int write_journal(const uint8_t *data, size_t size)
             uint8_t head[36];
             put_u32(head, (uint32_t)len);
             veer__digest(p + 2, len, head + 4);
-            ok = write(fd, head, sizeof head) == (ssize_t)sizeof head && write(fd, p + 2, len) == (ssize_t)len;
+            ok = write(fd, head, sizeof head) == (ssize_t)sizeof head &&
+                 write(fd, p + 2, len) == (ssize_t)len;
             p += 2 + len;
         }
         if (ok && p < end)
@@ -92,7 +93,8 @@ static void open_state(state *s, const char *dir)
     veer_error err;
     if (veer__journal_open(dir, veer__store_replay, &s->store, &s->journal, &s->rep, &err) != 0) {
         fprintf(stderr, "fuzz_journal: open failed: %s: %s\n", err.field, err.message);
-        abort(); /* the directory is ours and writable: only damage is in the input, never an error */
+        abort(); /* the directory is ours and writable: only damage is in the input, never an error
+                  */
     }
     s->store.journal = s->journal;
     s->tasks = veer__registry_count(registry);
@@ -129,12 +131,15 @@ int LLVMFuzzerTestOneInput(const uint8_t *data, size_t size)
     close_state(&a);
 
     open_state(&b, dir);
-    if (b.rep.cut || b.rep.records != a.rep.records || b.rep.skipped != a.rep.skipped || b.tasks != a.tasks ||
-        b.channels != a.channels) {
-        fprintf(stderr, "fuzz_journal: second replay differs: cut %d, records %llu/%llu, skipped %llu/%llu, "
-                        "tasks %u/%u, channels %u/%u\n", b.rep.cut, (unsigned long long)b.rep.records,
-                (unsigned long long)a.rep.records, (unsigned long long)b.rep.skipped,
-                (unsigned long long)a.rep.skipped, b.tasks, a.tasks, b.channels, a.channels);
+    if (b.rep.cut || b.rep.records != a.rep.records || b.rep.skipped != a.rep.skipped ||
+        b.tasks != a.tasks || b.channels != a.channels) {
+        fprintf(
+            stderr,
+            "fuzz_journal: second replay differs: cut %d, records %llu/%llu, skipped %llu/%llu, "
+            "tasks %u/%u, channels %u/%u\n",
+            b.rep.cut, (unsigned long long)b.rep.records, (unsigned long long)a.rep.records,
+            (unsigned long long)b.rep.skipped, (unsigned long long)a.rep.skipped, b.tasks, a.tasks,
+            b.channels, a.channels);
         abort();
     }
     veer_error err;
@@ -146,9 +151,11 @@ int LLVMFuzzerTestOneInput(const uint8_t *data, size_t size)
 
     open_state(&c, dir);
     if (c.rep.cut || c.rep.skipped != 0 || c.tasks != b.tasks || c.with_task != b.with_task) {
-        fprintf(stderr, "fuzz_journal: replay after compaction differs: cut %d, skipped %llu, tasks %u/%u, "
-                        "channels with a task %u/%u\n", c.rep.cut, (unsigned long long)c.rep.skipped, c.tasks,
-                b.tasks, c.with_task, b.with_task);
+        fprintf(stderr,
+                "fuzz_journal: replay after compaction differs: cut %d, skipped %llu, tasks %u/%u, "
+                "channels with a task %u/%u\n",
+                c.rep.cut, (unsigned long long)c.rep.skipped, c.tasks, b.tasks, c.with_task,
+                b.with_task);
         abort();
     }
     if (strict && c.epoch_sum != b.epoch_sum) {

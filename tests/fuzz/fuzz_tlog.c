@@ -3,10 +3,11 @@
  *
  * Input: byte 0 chooses the declared action space (bit 0: discrete with 4 actions, else 2
  * continuous actions in [-1, 1]; bit 1: tabular states with counts 5, 5; bit 2: an episode-end
- * file; bit 3: the ends are time-limit cuts), then up to four files (states, actions, next states, episode ends), each a 16-bit
- * little-endian length and that many bytes. Beyond "no crash", an accepted log must keep the
- * reader's promises (tlog.h): n rows of finite values, actions within the declared bounds or
- * count, episode ends turned into 0/1 continuation flags (always 1 for time-limit cuts). */
+ * file; bit 3: the ends are time-limit cuts), then up to four files (states, actions, next states,
+ * episode ends), each a 16-bit little-endian length and that many bytes. Beyond "no crash", an
+ * accepted log must keep the reader's promises (tlog.h): n rows of finite values, actions within
+ * the declared bounds or count, episode ends turned into 0/1 continuation flags (always 1 for
+ * time-limit cuts). */
 #include <fcntl.h>
 #include <math.h>
 #include <stdint.h>
@@ -77,7 +78,8 @@ int LLVMFuzzerTestOneInput(const uint8_t *data, size_t size)
         if (!isfinite(log.states[i]) || !isfinite(log.next_states[i]))
             abort();
     for (size_t i = 0; i < log.n; i++) {
-        if ((log.cont[i] != 0.0f && log.cont[i] != 1.0f) || (spec.ends_truncated && log.cont[i] != 1.0f))
+        if ((log.cont[i] != 0.0f && log.cont[i] != 1.0f) ||
+            (spec.ends_truncated && log.cont[i] != 1.0f))
             abort();
         for (uint32_t k = 0; k < log.action_dim; k++) {
             float a = log.actions[i * log.action_dim + k];

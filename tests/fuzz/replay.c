@@ -42,7 +42,10 @@ static uint64_t next_u64(void)
     return x * 0x2545F4914F6CDD1DULL;
 }
 
-static size_t below(size_t n) { return n ? (size_t)(next_u64() % n) : 0; }
+static size_t below(size_t n)
+{
+    return n ? (size_t)(next_u64() % n) : 0;
+}
 
 static void add_file(const char *path)
 {
@@ -96,9 +99,22 @@ static void add_path(const char *path)
         qsort(inputs + first, n_inputs - first, sizeof *inputs, by_name);
 }
 
-static const uint64_t INTERESTING[] = {0, 1, 0x7f, 0x80, 0xff, 0x100, 0x7fff, 0x8000, 0xffff,
-                                       0x7fffffff, 0x80000000u, 0xffffffffu, 0x7ff0000000000000ULL,
-                                       0x7fc00000u, 0xff800000u, 0xffffffffffffffffULL};
+static const uint64_t INTERESTING[] = {0,
+                                       1,
+                                       0x7f,
+                                       0x80,
+                                       0xff,
+                                       0x100,
+                                       0x7fff,
+                                       0x8000,
+                                       0xffff,
+                                       0x7fffffff,
+                                       0x80000000u,
+                                       0xffffffffu,
+                                       0x7ff0000000000000ULL,
+                                       0x7fc00000u,
+                                       0xff800000u,
+                                       0xffffffffffffffffULL};
 
 /* Applies one to eight mutations to buf[0..*len) (capacity cap). */
 static void mutate(uint8_t *buf, size_t *len, size_t cap)
@@ -246,7 +262,8 @@ int main(int argc, char **argv)
     }
     clock_gettime(CLOCK_MONOTONIC, &t);
     double secs = (double)(t.tv_sec - t0.tv_sec) + 1e-9 * (double)(t.tv_nsec - t0.tv_nsec);
-    printf("replay: %zu corpus inputs and %ld mutations in %.2f s, no failure\n", n_inputs, done, secs);
+    printf("replay: %zu corpus inputs and %ld mutations in %.2f s, no failure\n", n_inputs, done,
+           secs);
     free(buf);
     for (size_t i = 0; i < n_inputs; i++) {
         free(inputs[i].data);
