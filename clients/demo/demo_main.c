@@ -158,7 +158,7 @@ int main(int argc, char **argv)
     sigaction(SIGTERM, &sa, NULL);
 
     if (veer_demo_supervisor_setup(&run) != 0) {
-        veer_demo_supervisor_close();
+        veer_demo_supervisor_close(&run);
         veer_demo_run_free(&run);
         return EXIT_FAILED;
     }
@@ -169,14 +169,14 @@ int main(int argc, char **argv)
     pthread_t ctl;
     if (pthread_create(&ctl, NULL, veer_demo_controller, &run) != 0) {
         fprintf(stderr, "veer-arm-demo: cannot start the controller thread\n");
-        veer_demo_supervisor_close();
+        veer_demo_supervisor_close(&run);
         veer_demo_run_free(&run);
         return EXIT_FAILED;
     }
     int rc = veer_demo_supervisor_loop(&run);
     atomic_store(&run.stop, rc != 0 || atomic_load(&run.stop));
     pthread_join(ctl, NULL);
-    veer_demo_supervisor_close();
+    veer_demo_supervisor_close(&run);
 
     long done = atomic_load(&run.ticks_done), misses = 0, fallbacks = 0;
     for (long k = 0; k < done; k++) {

@@ -61,6 +61,7 @@ typedef struct veer_demo_run {
     char controller_msg[320];
 
     /* Written by the supervisor. */
+    struct veer_client *admin; /* the supervisor's own client (admin socket) */
     veer_demo_switch switches[VEER_DEMO_MAX_SWITCHES];
     int nswitches;
     veer_demo_drift *drift; /* one per second */
@@ -80,7 +81,7 @@ void *veer_demo_controller(void *arg);
 int veer_demo_supervisor_setup(veer_demo_run *run);
 /* Runs until the controller is done: status lines, switches, drift readings. */
 int veer_demo_supervisor_loop(veer_demo_run *run);
-void veer_demo_supervisor_close(void);
+void veer_demo_supervisor_close(veer_demo_run *run);
 
 /* Reads veerd's drift gauges from HOST:PORT/metrics. Returns 0 and fills `d` (t_s untouched),
  * or -1 when the endpoint cannot be read or lacks the gauges. */

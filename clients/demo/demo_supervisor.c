@@ -22,8 +22,6 @@
 #include "demo_run.h"
 #include "veer/client.h"
 
-static veer_client *admin;
-
 static int cmp_u32(const void *a, const void *b)
 {
     uint32_t x = *(const uint32_t *)a, y = *(const uint32_t *)b;
@@ -42,7 +40,7 @@ static int switch_to(veer_demo_run *run, int task)
 {
     veer_error err = {0};
     const veer_client_channel *ch;
-    int rc = veer_client_switch(admin, run->opt.channel, veer_arm_tasks[task].name, &ch, &err);
+    int rc = veer_client_switch(run->admin, run->opt.channel, veer_arm_tasks[task].name, &ch, &err);
     if (rc) {
         fprintf(stderr, "veer-arm-demo: switch to %s: %s (%s): %s\n", veer_arm_tasks[task].name,
                 veer_errname(rc), err.field, err.message);
@@ -61,7 +59,7 @@ int veer_demo_supervisor_setup(veer_demo_run *run)
     veer_client_options_init(&co);
     co.admin_endpoint = run->opt.admin;
     co.timeout_ms = 10000; /* encoding 4096 samples on a busy machine */
-    int rc = veer_client_open(&co, &admin, &err);
+    int rc = veer_client_open(&co, &run->admin, &err);
     if (rc) {
         fprintf(stderr, "veer-arm-demo: cannot open the admin socket %s: %s\n", run->opt.admin,
                 err.message);
@@ -82,7 +80,7 @@ int veer_demo_supervisor_setup(veer_demo_run *run)
         const veer_client_task *stored;
         if ((rc = veer_demo_task_spec_build(bundle, task, &run->params, enc, 1, &spec, &err)) ==
             0) {
-            rc = veer_client_task_put(admin, task->name, &spec.spec, VEER_ARM_OBS_DIM, &stored,
+            rc = veer_client_task_put(run->admin, task->name, &spec.spec, VEER_ARM_OBS_DIM, &stored,
                                       &err);
             veer_demo_task_spec_free(&spec);
         }
@@ -106,10 +104,10 @@ int veer_demo_supervisor_setup(veer_demo_run *run)
     return rc;
 }
 
-void veer_demo_supervisor_close(void)
+void veer_demo_supervisor_close(veer_demo_run *run)
 {
-    veer_client_close(admin);
-    admin = NULL;
+    veer_client_close(run->admin);
+    run->admin = NULL;
 }
 
 static const char *level_name(double level)
