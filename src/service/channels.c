@@ -166,6 +166,11 @@ size_t veer__channels_reclaim(veer__channels *t)
 uint32_t veer__channels_capacity(const veer__channels *t) { return t->capacity; }
 uint32_t veer__channels_count(const veer__channels *t) { return t->count; }
 
+uint32_t veer__channels_index(const veer__channels *t, const veer__channel *ch)
+{
+    return (uint32_t)(ch - t->slots);
+}
+
 veer__channel *veer__channels_slot(veer__channels *t, uint32_t i)
 {
     veer__channel *ch = &t->slots[i];

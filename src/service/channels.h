@@ -78,4 +78,8 @@ uint32_t veer__channels_capacity(const veer__channels *t);
 uint32_t veer__channels_count(const veer__channels *t);
 veer__channel *veer__channels_slot(veer__channels *t, uint32_t i);
 
+/* The slot index of a channel of this table (0 .. capacity-1): a fixed small number that stands
+ * for the channel, since channels never move or leave. Any thread; one subtraction. */
+uint32_t veer__channels_index(const veer__channels *t, const veer__channel *ch);
+
 #endif
