@@ -54,7 +54,16 @@ struct veer__act {
     uint64_t policy_p99_ns; /* 0 until the first window is full */
     uint32_t predicted_late_in_row; /* acts sent to the fallback by the estimate since a probe */
     veer_drift *drift;      /* NULL without training statistics; its writer is the loop thread */
-    veer__state_ring states; /* act states on their way to the drift monitor */
+    veer__state_ring states; /* act states, tagged with their channel's slot, on their way to the
+                                drift monitors */
+    /* Per-channel drift monitors, indexed by channel slot; made by the loop thread (the drain)
+     * on a channel's first state. The act thread never touches them. */
+    veer_drift **channel_drift;
+    uint32_t channel_drift_cap; /* the channel table's capacity */
+    int channel_drift_failed;   /* a creation failed: memory is short, make no more (the channel
+                                   shows no drift series; its states still count for the service) */
+    veer_drift_training train;
+    veer_drift_config drift_cfg;
     veer_hist_recorder *stage[VEER__ACT_STAGE_COUNT]; /* all NULL with monitors off */
     uint64_t reply_start_ns; /* when serve_act began packing its reply; 0 otherwise */
     veer__channel *acted_on; /* the channel of the request being served, NULL otherwise */
@@ -147,13 +156,18 @@ static size_t serve_act(veer__act *a, uint64_t id, const Veer__Wire__ActRequest 
         }
     }
 
+    veer__channel *ch = veer__channels_find(a->cfg.channels, q->channel);
     uint32_t coverage = 0;
     if (a->drift != NULL) {
         /* Only the distance test runs here; the window statistics are updated by the loop thread
-         * from the ring (veer__act_drain_states), so their cost stays off the act path. */
+         * from the ring (veer__act_drain_states), so their cost stays off the act path. The
+         * channel travels as its slot number: one 4-byte store. A channel not in the table yet
+         * (nobody switched it) counts for the whole service only. */
         if (veer_drift_check(a->drift, q->state, NULL) == 1)
             coverage = VEER_ACT_OUT_OF_COVERAGE;
-        veer__state_ring_push(&a->states, q->state);
+        veer__state_ring_push_tagged(&a->states, q->state,
+                                     ch != NULL ? veer__channels_index(a->cfg.channels, ch)
+                                                : VEER__STATE_RING_NO_TAG);
     }
 
     uint64_t deadline_ns = (uint64_t)(q->deadline_us ? q->deadline_us : a->cfg.default_deadline_us) * 1000u;
@@ -164,7 +178,6 @@ static size_t serve_act(veer__act *a, uint64_t id, const Veer__Wire__ActRequest 
     float value = 0.0f;
     uint32_t flags = 0;
 
-    veer__channel *ch = veer__channels_find(a->cfg.channels, q->channel);
     const veer__active_task *task = ch ? atomic_load_explicit(&ch->active, memory_order_seq_cst) : NULL;
     if (task == NULL) {
         use_fallback(a, &value);
@@ -323,6 +336,9 @@ static void act_free(veer__act *a)
     veer_workspace_destroy(a->ws);
     veer__arena_free(&a->arena);
     veer_drift_destroy(a->drift);
+    for (uint32_t i = 0; a->channel_drift != NULL && i < a->channel_drift_cap; i++)
+        veer_drift_destroy(a->channel_drift[i]);
+    veer__free(a->channel_drift);
     veer__state_ring_free(&a->states);
     for (int i = 0; i < VEER__ACT_STAGE_COUNT; i++)
         veer_hist_recorder_destroy(a->stage[i]);
@@ -372,10 +388,22 @@ int veer__act_start(const veer__act_config *cfg, veer__act **out, veer_error *er
             goto fail;
         }
     }
-    veer_drift_training train;
-    if (!cfg->monitors_off && info->has_stats && veer_drift_training_from_model(info, &train, NULL) == 0 &&
-        (rc = veer_drift_create(&train, NULL, &a->drift, err)) < 0)
+    veer_drift_config_init(&a->drift_cfg);
+    if (cfg->drift_window != 0)
+        a->drift_cfg.window = cfg->drift_window;
+    if (!cfg->monitors_off && info->has_stats && veer_drift_training_from_model(info, &a->train, NULL) == 0 &&
+        (rc = veer_drift_create(&a->train, &a->drift_cfg, &a->drift, err)) < 0)
         goto fail;
+    if (a->drift != NULL) {
+        /* One pointer per table slot (about two per --max-channels); the monitors themselves
+         * come with each channel's first state. */
+        a->channel_drift_cap = veer__channels_capacity(cfg->channels);
+        a->channel_drift = veer__calloc(a->channel_drift_cap, sizeof *a->channel_drift);
+        if (a->channel_drift == NULL) {
+            rc = veer__error_set(err, VEER_ENOMEM, "act", "no memory for the per-channel drift monitors");
+            goto fail;
+        }
+    }
     if (a->drift != NULL && veer__state_ring_init(&a->states, info->state_dim, ACT_STATE_RING) != 0) {
         rc = veer__error_set(err, VEER_ENOMEM, "act", "no memory for the drift monitor's state ring");
         goto fail;
@@ -422,16 +450,39 @@ void veer__act_counters_get(const veer__act *a, veer__act_counters *out)
 
 struct veer_drift *veer__act_drift(veer__act *a) { return a->drift; }
 
+/* The channel's monitor, made on its first state. The training statistics were checked when
+ * the service-wide monitor was made from them, so only memory can fail here; then the channel
+ * goes without (its states still count for the service). */
+static veer_drift *channel_drift(veer__act *a, uint32_t slot)
+{
+    if (slot >= a->channel_drift_cap)
+        return NULL;
+    if (a->channel_drift[slot] == NULL && !a->channel_drift_failed &&
+        veer_drift_create(&a->train, &a->drift_cfg, &a->channel_drift[slot], NULL) < 0) {
+        a->channel_drift[slot] = NULL;
+        a->channel_drift_failed = 1;
+    }
+    return a->channel_drift[slot];
+}
+
 uint32_t veer__act_drain_states(veer__act *a, uint32_t max)
 {
-    uint32_t n = 0;
+    uint32_t n = 0, tag = VEER__STATE_RING_NO_TAG;
     const float *state;
-    while (a->drift != NULL && n < max && (state = veer__state_ring_peek(&a->states)) != NULL) {
+    while (a->drift != NULL && n < max && (state = veer__state_ring_peek_tagged(&a->states, &tag)) != NULL) {
         veer_drift_add(a->drift, state, NULL, NULL);
+        veer_drift *cd = tag != VEER__STATE_RING_NO_TAG ? channel_drift(a, tag) : NULL;
+        if (cd != NULL)
+            veer_drift_add(cd, state, NULL, NULL);
         veer__state_ring_release(&a->states);
         n++;
     }
     return n;
+}
+
+struct veer_drift *veer__act_channel_drift(veer__act *a, uint32_t slot)
+{
+    return a->drift != NULL && slot < a->channel_drift_cap ? a->channel_drift[slot] : NULL;
 }
 
 uint64_t veer__act_states_dropped(const veer__act *a)

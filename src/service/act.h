@@ -43,6 +43,7 @@ typedef struct veer__act_config {
     const uint8_t *server_secret_key; /* 32 bytes: require CURVE; NULL: no authentication */
     int monitors_off; /* 1: no drift monitor, no stage latency recorders (for the overhead
                          benchmark); the coverage flag is then never set */
+    uint32_t drift_window; /* states in each drift monitor's window; 0: the monitor's default */
 } veer__act_config;
 
 /* Stages of an act request with their own latency recorder. The time a request spends queued
@@ -76,9 +77,17 @@ void veer__act_stop(veer__act *a);
  * read it through veer_drift_snapshot. */
 struct veer_drift *veer__act_drift(veer__act *a);
 
-/* Adds up to `max` of the act states waiting in the ring to the drift monitor; returns how many.
- * One thread only (veerd's loop), which thereby is the drift monitor's writer. */
+/* Adds up to `max` of the act states waiting in the ring to the service-wide drift monitor and
+ * to their channel's monitor (made here on the channel's first state); returns how many. One
+ * thread only (veerd's loop), which thereby is every drift monitor's writer. */
 uint32_t veer__act_drain_states(veer__act *a, uint32_t max);
+
+/* The drift monitor of the channel in table slot `slot` (veer__channels_index), or NULL when the
+ * channel has not acted with a valid state yet, without training statistics, with monitors off,
+ * or when its monitor could not be allocated. Only states acted on a channel that was in the
+ * table at the time count (an act on a never-switched channel counts for the service only).
+ * Same reading rule as veer__act_drift; the thread that drains may also read it directly. */
+struct veer_drift *veer__act_channel_drift(veer__act *a, uint32_t slot);
 
 /* States the ring could not take because the drain fell a whole ring behind. Any thread. */
 uint64_t veer__act_states_dropped(const veer__act *a);

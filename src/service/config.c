@@ -78,6 +78,10 @@ static const opt_desc OPTIONS[] = {
     {"--monitors", "VEER_MONITORS", OPT_BOOL, OFF(monitors), "1", 0, 1, 0,
      "Drift monitor and per-stage latency histograms on the act path (0 turns them off, for\n"
      "measuring their cost; no coverage flag, no drift or latency metrics then)."},
+    {"--drift-window", "VEER_DRIFT_WINDOW", OPT_U32, OFF(drift_window), "1000", 100, 1000000, 0,
+     "States in the sliding window of each drift monitor (the whole service's and each\n"
+     "channel's). Levels are judged once a window is full; under 100 states a 1 % rate means\n"
+     "less than one state."},
     {"--act-auth", "VEER_ACT_AUTH", OPT_BOOL, OFF(act_auth), "0", 0, 1, 0,
      "Require CURVE authentication on the act socket too (0 or 1; needs --server-key)."},
 };

@@ -30,6 +30,7 @@ typedef struct veer__config {
     uint32_t max_channels;
     uint32_t journal_compact_bytes;
     uint32_t monitors;             /* 1: drift monitor and stage latency recorders on */
+    uint32_t drift_window;         /* states in each drift monitor's sliding window */
 } veer__config;
 
 /* Results of veer__config_parse besides 0 and VEER_ECONFIG. */

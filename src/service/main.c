@@ -248,7 +248,8 @@ int main(int argc, char **argv)
                              .deadline_percentile = d.cfg.deadline_percentile,
                              .max_message_bytes = d.cfg.act_max_message_bytes,
                              .server_secret_key = auth && d.cfg.act_auth ? secret : NULL,
-                             .monitors_off = !d.cfg.monitors};
+                             .monitors_off = !d.cfg.monitors,
+                             .drift_window = d.cfg.drift_window};
     if (veer__act_start(&acfg, &d.act, &err) < 0) {
         veer__log_error("%s", err.message);
         goto fail_events;
