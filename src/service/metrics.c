@@ -30,6 +30,11 @@ struct veer__metrics {
     veer_hist *scratch;
     int slot;
     veer_drift_report *drift; /* NULL without a drift monitor */
+    /* Per channel table slot: the report of the channel's drift monitor, made on the first
+     * render after the monitor appeared; have_channel marks those snapshotted this render. */
+    veer_drift_report **channel_drift;
+    uint8_t *have_channel;
+    uint32_t channel_slots;
 };
 
 int veer__metrics_create(const veer__metrics_config *cfg, veer__metrics **out)
@@ -49,6 +54,13 @@ int veer__metrics_create(const veer__metrics_config *cfg, veer__metrics **out)
     veer_drift *drift = cfg->act ? veer__act_drift(cfg->act) : NULL;
     if (rc == 0 && drift != NULL)
         rc = veer_drift_report_create(drift, &m->drift);
+    if (rc == 0 && drift != NULL) {
+        m->channel_slots = veer__channels_capacity(cfg->store->channels);
+        m->channel_drift = veer__calloc(m->channel_slots, sizeof *m->channel_drift);
+        m->have_channel = veer__calloc(m->channel_slots, 1);
+        if (m->channel_drift == NULL || m->have_channel == NULL)
+            rc = VEER_ENOMEM;
+    }
     if (rc != 0) {
         veer__metrics_destroy(m);
         return VEER_ENOMEM;
@@ -70,6 +82,10 @@ void veer__metrics_destroy(veer__metrics *m)
         veer_hist_destroy(m->channel[c]);
     veer_hist_destroy(m->scratch);
     veer_drift_report_destroy(m->drift);
+    for (uint32_t i = 0; m->channel_drift != NULL && i < m->channel_slots; i++)
+        veer_drift_report_destroy(m->channel_drift[i]);
+    veer__free(m->channel_drift);
+    veer__free(m->have_channel);
     veer__free(m);
 }
 
@@ -326,10 +342,18 @@ static void render_latency(veer__metrics *m, veer__http_response *r)
                                STAGE_NAMES[s], (unsigned long long)recent_count[s]);
 }
 
-/* One drift sample: name{scope="service"[,feature="..."]} value. */
-static void drift_sample(veer__http_response *r, const char *name, const char *feature, double v)
+/* One drift sample: name{scope="service"[,feature="..."]} for the whole service (channel NULL),
+ * name{scope="channel",channel="...",[,feature="..."]} for one channel. */
+static void drift_sample(veer__http_response *r, const char *name, const char *channel,
+                         const char *feature, double v)
 {
-    veer__http_body_printf(r, "%s{scope=\"service\"", name);
+    if (channel == NULL) {
+        veer__http_body_printf(r, "%s{scope=\"service\"", name);
+    } else {
+        veer__http_body_printf(r, "%s{scope=\"channel\",channel=\"", name);
+        veer__metrics_label_value(r, channel);
+        veer__http_body_append(r, "\"", 1);
+    }
     if (feature != NULL) {
         veer__http_body_printf(r, ",feature=\"");
         veer__metrics_label_value(r, feature);
@@ -338,11 +362,78 @@ static void drift_sample(veer__http_response *r, const char *name, const char *f
     veer__http_body_printf(r, "} %.17g\n", v);
 }
 
+/* The samples of family number f (the table in render_drift) from one report. */
+static void drift_family(veer__http_response *r, const char *name, size_t f,
+                         const veer_drift_report *d, const char *channel,
+                         const char *const *names)
+{
+    switch (f) {
+    case 0:
+        drift_sample(r, name, channel, NULL, d->fill);
+        break;
+    case 1:
+        drift_sample(r, name, channel, NULL, d->window);
+        break;
+    case 2:
+        drift_sample(r, name, channel, NULL, (double)d->states_total);
+        break;
+    case 3:
+        drift_sample(r, name, channel, NULL, (double)d->out_of_coverage_total);
+        break;
+    case 4:
+        drift_sample(r, name, channel, NULL, d->out_of_coverage_window);
+        break;
+    case 5:
+        for (uint32_t i = 0; i < d->state_dim; i++)
+            drift_sample(r, name, channel, names[i], d->psi[i]);
+        break;
+    case 6:
+        for (uint32_t i = 0; i < d->state_dim; i++)
+            drift_sample(r, name, channel, names[i], d->mean_shift[i]);
+        break;
+    case 7:
+        for (uint32_t i = 0; i < d->state_dim; i++)
+            drift_sample(r, name, channel, names[i], (double)d->psi_level[i]);
+        break;
+    case 8:
+        drift_sample(r, name, channel, NULL, d->psi_max);
+        break;
+    case 9:
+        drift_sample(r, name, channel, NULL, (double)d->psi_overall);
+        break;
+    case 10:
+        drift_sample(r, name, channel, NULL, d->exceed_rate);
+        break;
+    case 11:
+        drift_sample(r, name, channel, NULL, (double)d->exceed_level);
+        break;
+    case 12:
+        drift_sample(r, name, channel, NULL, (double)d->level);
+        break;
+    }
+}
+
+/* Snapshots the per-channel monitors into their reports; marks which ones have one. */
+static void snapshot_channels(veer__metrics *m)
+{
+    for (uint32_t i = 0; i < m->channel_slots; i++) {
+        veer_drift *drift = veer__act_channel_drift(m->cfg.act, i);
+        m->have_channel[i] = 0;
+        if (drift == NULL || veer__channels_slot(m->cfg.store->channels, i) == NULL)
+            continue;
+        if (m->channel_drift[i] == NULL && veer_drift_report_create(drift, &m->channel_drift[i]) != 0)
+            continue; /* no memory: this channel's series are missing from this scrape */
+        m->have_channel[i] = veer_drift_snapshot(drift, m->channel_drift[i]) == 0;
+    }
+}
+
 static void render_drift(veer__metrics *m, veer__http_response *r)
 {
     veer_drift *drift = m->cfg.act ? veer__act_drift(m->cfg.act) : NULL;
     veer_drift_report *d = m->drift;
     int have = drift != NULL && d != NULL && veer_drift_snapshot(drift, d) == 0;
+    if (have)
+        snapshot_channels(m);
     const char *const *names = m->cfg.store->info->feature_names;
     struct {
         const char *name, *type, *help;
@@ -373,50 +464,11 @@ static void render_drift(veer__metrics *m, veer__http_response *r)
         family(r, fam[f].name, fam[f].type, fam[f].help);
         if (!have)
             continue;
-        switch (f) {
-        case 0:
-            drift_sample(r, fam[f].name, NULL, d->fill);
-            break;
-        case 1:
-            drift_sample(r, fam[f].name, NULL, d->window);
-            break;
-        case 2:
-            drift_sample(r, fam[f].name, NULL, (double)d->states_total);
-            break;
-        case 3:
-            drift_sample(r, fam[f].name, NULL, (double)d->out_of_coverage_total);
-            break;
-        case 4:
-            drift_sample(r, fam[f].name, NULL, d->out_of_coverage_window);
-            break;
-        case 5:
-            for (uint32_t i = 0; i < d->state_dim; i++)
-                drift_sample(r, fam[f].name, names[i], d->psi[i]);
-            break;
-        case 6:
-            for (uint32_t i = 0; i < d->state_dim; i++)
-                drift_sample(r, fam[f].name, names[i], d->mean_shift[i]);
-            break;
-        case 7:
-            for (uint32_t i = 0; i < d->state_dim; i++)
-                drift_sample(r, fam[f].name, names[i], (double)d->psi_level[i]);
-            break;
-        case 8:
-            drift_sample(r, fam[f].name, NULL, d->psi_max);
-            break;
-        case 9:
-            drift_sample(r, fam[f].name, NULL, (double)d->psi_overall);
-            break;
-        case 10:
-            drift_sample(r, fam[f].name, NULL, d->exceed_rate);
-            break;
-        case 11:
-            drift_sample(r, fam[f].name, NULL, (double)d->exceed_level);
-            break;
-        case 12:
-            drift_sample(r, fam[f].name, NULL, (double)d->level);
-            break;
-        }
+        drift_family(r, fam[f].name, f, d, NULL, names);
+        for (uint32_t i = 0; i < m->channel_slots; i++)
+            if (m->have_channel[i])
+                drift_family(r, fam[f].name, f, m->channel_drift[i],
+                             veer__channels_slot(m->cfg.store->channels, i)->name, names);
     }
 }
 

@@ -10,6 +10,12 @@
  * from the monitor's published snapshot. So rendering never makes the act thread wait, and a
  * scrape costs the act path nothing.
  *
+ * Drift series come per scope: `scope="service"` for the service-wide monitor (every valid act
+ * state), and `scope="channel",channel="NAME"` for each channel's own monitor (the states acted
+ * on that channel since it entered the table). Both sit in the same families (veer_drift_psi,
+ * veer_drift_exceed_rate, ...), so a query selects one scope: summing a family over every
+ * series would count each state twice.
+ *
  * Bucket bounds are 1, 2, 5 x 10^k seconds from 1 µs to 50 s. Each `le` count is the number of
  * recorded values whose histogram bucket lies wholly at or below the bound: it never counts a
  * value above `le`, and may leave in the next bucket a value at most 0.79 % below it. */

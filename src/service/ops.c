@@ -12,6 +12,7 @@
 #include "service/http.h"
 #include "service/log.h"
 #include "service/metrics.h"
+#include "veer/drift.h"
 
 #define OPS_TICK_MS 100
 #define METRICS_EVERY 10 /* ticks: one second */
@@ -24,12 +25,57 @@ struct veer__ops {
     veer__burst burst;
     uint32_t ticks;
     veer__metrics_extra extra;
+    /* Per-channel drift events: the levels last announced for the channel in each table slot. */
+    veer_drift_report *channel_report; /* NULL without a drift monitor */
+    struct channel_levels {
+        veer_drift_level psi, exceed;
+        uint64_t seq;
+    } *channel_levels;
+    uint32_t channel_slots;
 };
+
+/* Announces per-channel drift level changes (scope: the channel's name), as veerd's main does for
+ * the whole service. This thread is the monitors' writer; it reads their published snapshots,
+ * which change on every level change, so no change is missed. */
+static void check_channel_drift(veer__ops *o)
+{
+    const veer_model_info *info = o->cfg.store->info;
+    veer_drift_report *r = o->channel_report;
+    for (uint32_t i = 0; r != NULL && i < o->channel_slots; i++) {
+        veer_drift *drift = veer__act_channel_drift(o->cfg.act, i);
+        struct channel_levels *seen = &o->channel_levels[i];
+        if (drift == NULL || veer_drift_snapshot(drift, r) != 0 || r->publish_seq == seen->seq)
+            continue;
+        seen->seq = r->publish_seq;
+        veer__channel *ch = veer__channels_slot(o->cfg.store->channels, i);
+        const char *name = ch != NULL ? ch->name : "";
+        if (r->psi_overall != seen->psi) {
+            seen->psi = r->psi_overall;
+            veer__log_warn("drift: channel '%s': PSI level %s (largest %.3f on %s)", name,
+                           veer_drift_level_name(r->psi_overall), r->psi_max,
+                           info->feature_names[r->psi_max_feature]);
+            if (o->cfg.store->events != NULL)
+                veer__events_drift(o->cfg.store->events, name, "psi",
+                                   info->feature_names[r->psi_max_feature], r->psi_max,
+                                   (uint32_t)r->psi_overall);
+        }
+        if (r->exceed_level != seen->exceed) {
+            seen->exceed = r->exceed_level;
+            veer__log_warn("drift: channel '%s': exceedance level %s (%.1f %% of the window beyond "
+                           "the training p99 distance)",
+                           name, veer_drift_level_name(r->exceed_level), 100.0 * r->exceed_rate);
+            if (o->cfg.store->events != NULL)
+                veer__events_drift(o->cfg.store->events, name, "exceedance", "", r->exceed_rate,
+                                   (uint32_t)r->exceed_level);
+        }
+    }
+}
 
 static void on_tick(uv_timer_t *t)
 {
     veer__ops *o = t->data;
     veer__act_drain_states(o->cfg.act, UINT32_MAX);
+    check_channel_drift(o);
     veer__act_counters c;
     veer__act_counters_get(o->cfg.act, &c);
     uint32_t misses = 0;
@@ -84,11 +130,24 @@ int veer__ops_start(const veer__ops_config *cfg, veer__ops **out, veer_error *er
         veer__free(o);
         return veer__error_set(err, VEER_ENOMEM, "--http", "no memory for the metrics' histograms");
     }
+    veer_drift *drift = veer__act_drift(cfg->act);
+    if (drift != NULL) {
+        o->channel_slots = veer__channels_capacity(cfg->store->channels);
+        o->channel_levels = veer__calloc(o->channel_slots, sizeof *o->channel_levels);
+        if (o->channel_levels == NULL || veer_drift_report_create(drift, &o->channel_report) != 0) {
+            veer__free(o->channel_levels);
+            veer__metrics_destroy(o->metrics);
+            veer__free(o);
+            return veer__error_set(err, VEER_ENOMEM, "--http", "no memory for the drift reports");
+        }
+    }
     if (cfg->http_address != NULL && cfg->http_address[0] != '\0') {
         veer__http_config hc = {
             .loop = cfg->loop, .address = cfg->http_address, .handler = handle, .ctx = o};
         int rc = veer__http_start(&hc, &o->http, err);
         if (rc < 0) {
+            veer_drift_report_destroy(o->channel_report);
+            veer__free(o->channel_levels);
             veer__metrics_destroy(o->metrics);
             veer__free(o);
             return rc;
@@ -109,6 +168,8 @@ int veer__ops_http_port(const veer__ops *o)
 static void on_timer_closed(uv_handle_t *handle)
 {
     veer__ops *o = handle->data;
+    veer_drift_report_destroy(o->channel_report);
+    veer__free(o->channel_levels);
     veer__free(o);
 }
 

@@ -1,7 +1,9 @@
 /* The operators' side of veerd: the HTTP endpoint (/metrics, /healthz, /readyz), the metrics it
- * renders, the drift monitor's updates from the act thread's state ring, and the timer that turns
- * the act thread's counters into events (bursts of deadline misses). It reads the act thread only through its atomics, recorders and the drift monitor's
- * snapshots, so nothing here can make an act wait. Loop thread only. */
+ * renders, the drift monitors' updates from the act thread's state ring (service-wide and per
+ * channel), and the timer that turns the act thread's counters into events (bursts of deadline
+ * misses) and per-channel drift level changes into drift events. It reads the act thread only
+ * through its atomics, recorders and the drift monitors' snapshots, so nothing here can make an
+ * act wait. Loop thread only. */
 #ifndef VEER_SERVICE_OPS_H
 #define VEER_SERVICE_OPS_H
 

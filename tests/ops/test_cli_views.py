@@ -100,10 +100,15 @@ def test_top_in_tmux_shows_the_expected_fields(continuous_bundle, start, tmp_pat
     plain = re.sub(r"\x1b\[[0-9;]*[A-Za-z]", "", screen)
     assert "veer top" in plain and "model continuous-random" in plain and "ready" in plain, plain
     assert re.search(rf"\bacts {acts}\b", plain), plain
-    row = re.search(r"^arm\s+pick\s+[-0-9.nan]+\s+1200\s+1\s+(\S+)$", plain, re.M)
+    row = re.search(r"^arm\s+pick\s+[-0-9.nan]+\s+1200\s+1\s+(\S+)\s+(\S+)$", plain, re.M)
     assert row, plain
     assert row.group(1) == fmt_duration(histogram_quantile(samples, "veer_channel_act_seconds", 0.99, channel="arm"))
-    assert re.search(r"^lift\s+place\s+", plain, re.M), plain
+    # The channel's own exceedance rate, "!" once its alarm is raised (feature 3 is far out).
+    rate = value(samples, "veer_drift_exceed_rate", scope="channel", channel="arm")
+    assert value(samples, "veer_drift_exceed_level", scope="channel", channel="arm") == 2
+    assert row.group(2) == f"{100 * rate:.1f}%!", (row.group(2), rate)
+    # lift never acted: no drift monitor of its own yet.
+    assert re.search(r"^lift\s+place\s+.*\s-$", plain, re.M), plain
     # The percentiles shown equal what an independent parser reads, formatted the CLI's way.
     for stage in ("decode", "policy", "reply", "total"):
         row = re.search(rf"^{stage}\s+(\d+)\s+(\S+)\s+(\S+)\s+(\S+)\s+(\S+)\s+(\S+)$", plain, re.M)

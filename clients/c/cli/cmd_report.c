@@ -410,7 +410,10 @@ static void drift_over_time(FILE *out, const recording *r, double *t, double *v,
     size_t k = 0;
     for (size_t i = 0; fs != NULL && i < last->n && k < nf; i++) {
         const char *f = veer_cli_sample_label(&last->samples[i], "feature");
-        if (strcmp(last->samples[i].name, "veer_drift_psi") != 0 || f == NULL)
+        const char *scope = veer_cli_sample_label(&last->samples[i], "scope");
+        /* The service-wide series only (per-channel ones, scope="channel", follow them). */
+        if (strcmp(last->samples[i].name, "veer_drift_psi") != 0 || f == NULL || scope == NULL ||
+            strcmp(scope, "service") != 0)
             continue;
         series(r, "veer_drift_psi", "feature", f, NULL, NULL, t, v);
         fs[k].name = f;

@@ -156,8 +156,8 @@ static double channel_p99(const veer_cli_metrics *cur, const veer_cli_metrics *p
 static void render_channels(screen *s, const veer_cli_metrics *cur, const veer_cli_metrics *prev,
                             double dt)
 {
-    put(s, "%s%-24s %-28s %10s %12s %9s %9s%s\n", sgr(s, "\033[7m"), "CHANNEL", "TASK", "ACTS/S",
-        "ACTS", "SWITCHES", "p99", RESET(s));
+    put(s, "%s%-24s %-28s %10s %12s %9s %9s %8s%s\n", sgr(s, "\033[7m"), "CHANNEL", "TASK",
+        "ACTS/S", "ACTS", "SWITCHES", "p99", "EXCEED", RESET(s));
     int rows = 0;
     for (size_t i = 0; i < cur->n; i++) {
         const veer_cli_sample *smp = &cur->samples[i];
@@ -172,8 +172,19 @@ static void render_channels(screen *s, const veer_cli_metrics *cur, const veer_c
         double rate = isfinite(before) ? (acts - before) / dt : NAN;
         char p99[32];
         veer_cli_duration(channel_p99(cur, prev, ch), p99, sizeof p99);
-        put(s, "%-24.24s %-28.28s %10.1f %12.0f %9.0f %9s\n", ch, task[0] ? task : "(none)", rate,
-            acts, get(cur, "veer_channel_switches_total", "channel", ch), p99);
+        /* The channel's own exceedance rate ("-" before its first state or without monitors);
+         * "!" and the alarm colour when its exceedance alarm is raised. */
+        double exceed = NAN, exceed_level = 0;
+        veer_cli_metrics_get2(cur, "veer_drift_exceed_rate", "scope", "channel", "channel", ch,
+                              &exceed);
+        veer_cli_metrics_get2(cur, "veer_drift_exceed_level", "scope", "channel", "channel", ch,
+                              &exceed_level);
+        char drift[32] = "-";
+        if (isfinite(exceed))
+            snprintf(drift, sizeof drift, "%.1f%%%s", 100 * exceed, exceed_level >= 2 ? "!" : "");
+        put(s, "%-24.24s %-28.28s %10.1f %12.0f %9.0f %9s %s%8s%s\n", ch, task[0] ? task : "(none)",
+            rate, acts, get(cur, "veer_channel_switches_total", "channel", ch), p99,
+            level_color(s, exceed_level), drift, exceed_level >= 1 ? RESET(s) : "");
         rows++;
     }
     if (rows == 0)
@@ -292,12 +303,18 @@ static void render_drift(screen *s, const veer_cli_metrics *cur)
     for (size_t i = 0; i < cur->n && k < nf; i++) {
         const veer_cli_sample *smp = &cur->samples[i];
         const char *f = veer_cli_sample_label(smp, "feature");
-        if (strcmp(smp->name, "veer_drift_psi") != 0 || f == NULL)
+        const char *scope = veer_cli_sample_label(smp, "scope");
+        /* The service-wide rows (each channel's own series carry scope="channel"). */
+        if (strcmp(smp->name, "veer_drift_psi") != 0 || f == NULL || scope == NULL ||
+            strcmp(scope, "service") != 0)
             continue;
         rows[k].name = f;
         rows[k].psi = smp->value;
-        rows[k].shift = get(cur, "veer_drift_mean_shift", "feature", f);
-        rows[k].level = get(cur, "veer_drift_psi_level", "feature", f);
+        rows[k].shift = rows[k].level = NAN;
+        veer_cli_metrics_get2(cur, "veer_drift_mean_shift", "scope", "service", "feature", f,
+                              &rows[k].shift);
+        veer_cli_metrics_get2(cur, "veer_drift_psi_level", "scope", "service", "feature", f,
+                              &rows[k].level);
         k++;
     }
     if (k > MAX_FEATURE_ROWS)
