@@ -1,10 +1,11 @@
 /* The forward-backward losses on one batch, with their gradients.
  *
  * The successor measure of policy π satisfies M(s,a,·) = P(·|s,a) + γ E[M(s',π(s'),·)]
- * (Touati & Ollivier, NeurIPS 2021, eq. 5). Writing M(s,a,ds') ≈ F(s,a)ᵀB(s') ρ(ds') with ρ
- * the distribution of next states in the data and measuring the error in L²(ρ) gives, up to
- * a constant that does not depend on F or B, the temporal-difference loss (ibid. eq. 7;
- * Touati, Rapin & Ollivier, ICLR 2023, §3 and Appendix, "FB loss"):
+ * (Touati & Ollivier, NeurIPS 2021: the Bellman equation for successor measures). Writing
+ * M(s,a,ds') ≈ F(s,a)ᵀB(s') ρ(ds') with ρ the distribution of next states in the data and
+ * measuring the error in L²(ρ) gives, up to
+ * a constant that does not depend on F or B, the temporal-difference loss (ibid.; Touati,
+ * Rapin & Ollivier, ICLR 2023, the FB loss; section references from memory):
  *
  *   L = ½ E_{(s,a,s⁺)~D, s'~ρ}[(F(s,a)ᵀB(s') − γ F̄(s⁺,π(s⁺))ᵀB̄(s'))²] − E_{(s,a,s⁺)~D}[F(s,a)ᵀB(s⁺)].
  *
