@@ -81,7 +81,8 @@ static const opt_desc OPTIONS[] = {
     {"--drift-window", "VEER_DRIFT_WINDOW", OPT_U32, OFF(drift_window), "1000", 100, 1000000, 0,
      "States in the sliding window of each drift monitor (the whole service's and each\n"
      "channel's). Levels are judged once a window is full; under 100 states a 1 % rate means\n"
-     "less than one state."},
+     "less than one state. Memory: about window x (6 x state size + 9) bytes per monitor, and\n"
+     "there are up to --max-channels + 1 monitors."},
     {"--act-auth", "VEER_ACT_AUTH", OPT_BOOL, OFF(act_auth), "0", 0, 1, 0,
      "Require CURVE authentication on the act socket too (0 or 1; needs --server-key)."},
 };
