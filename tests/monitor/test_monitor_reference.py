@@ -8,7 +8,7 @@ Sources beside each check:
     with NumPy from the window's states;
   - the exceedance rate without drift: Binomial(window, 0.01), bounds from scipy.stats.binom;
   - Mahalanobis distance sqrt((x - mu)^T P (x - mu)) recomputed with NumPy.
-All data are drawn from fixed-seed generators, so every run checks the same numbers.
+All data are drawn from generators with fixed start values, so every run checks the same numbers.
 """
 import ctypes as C
 
@@ -119,10 +119,10 @@ def test_histogram_errors(lib):
 BINS = 10
 
 
-def training_stats(n=4, count=200_000, seed=10):
+def training_stats(n=4, count=200_000, rng_key=10):
     """A Gaussian 'training set' with a known covariance; its statistics computed with NumPy the
     way a bundle would carry them."""
-    rng = np.random.default_rng(seed)
+    rng = np.random.default_rng(rng_key)
     a = rng.normal(size=(n, n))
     cov_true = a @ a.T + 0.5 * np.eye(n)
     mu_true = rng.normal(size=n) * 3.0
