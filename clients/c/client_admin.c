@@ -37,8 +37,9 @@ static int call(veer_client *c, Veer__Wire__Request *req, Veer__Wire__Reply__Bod
     Veer__Wire__Reply *r;
     if ((rc = veer__client_call(c, c->admin_sock, req, &r, err)) != 0)
         return rc;
-    if (r->body_case != want &&
-        !(want != VEER__WIRE__REPLY__BODY_DONE && r->body_case == VEER__WIRE__REPLY__BODY_DONE)) {
+    /* Only the expected kind will do: callers read *out from it, and a Done where a task or a
+     * channel was expected would leave them a NULL view with a success code. */
+    if (r->body_case != want) {
         int got = (int)r->body_case; /* read before the reply is freed */
         veer__wire__reply__free_unpacked(r, &veer__client_heap);
         return veer__error_set(err, VEER_EBADMSG, "reply",

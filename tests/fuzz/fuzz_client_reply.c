@@ -354,14 +354,20 @@ int LLVMFuzzerTestOneInput(const uint8_t *data, size_t size)
     }
     case 5: {
         const veer_client_task *t = NULL;
-        /* The client takes a Done reply as success and leaves *out NULL (client_admin.c call()). */
-        if (veer_client_task_get(client, "reach", &t, &err) == 0 && t != NULL)
+        /* Success must come with a view: a Done reply where a task was expected is refused
+         * (repro-switch-answered-with-done). */
+        if (veer_client_task_get(client, "reach", &t, &err) == 0) {
+            if (t == NULL)
+                abort();
             read_task(t);
+        }
         break;
     }
     case 6: {
         const veer_client_channel *ch = NULL;
-        if (veer_client_switch(client, "arm", "reach", &ch, &err) == 0 && ch != NULL) {
+        if (veer_client_switch(client, "arm", "reach", &ch, &err) == 0) {
+            if (ch == NULL)
+                abort();
             read_string(ch->name);
             read_string(ch->task);
         }
