@@ -116,6 +116,18 @@ int veer__channels_get_or_create(veer__channels *t, const char *name, veer__chan
     return 0;
 }
 
+/* The act thread may still hold `old`: it is freed only after every act in flight has passed a
+ * quiescent point (veer__channels_reclaim). */
+static void retire(veer__channels *t, veer__active_task *old)
+{
+    if (old == NULL)
+        return;
+    old->retired_at = atomic_load_explicit(&t->quiescent, memory_order_seq_cst);
+    old->retired_next = t->retired;
+    t->retired = old;
+    t->retired_count++;
+}
+
 int veer__channels_switch(veer__channels *t, veer__channel *ch, const char *task, const float *z,
                           uint32_t z_dim, uint64_t epoch, veer_error *err)
 {
@@ -132,13 +144,15 @@ int veer__channels_switch(veer__channels *t, veer__channel *ch, const char *task
     memcpy(a->z, z, (size_t)z_dim * sizeof(float));
     veer__active_task *old = atomic_exchange_explicit(&ch->active, a, memory_order_seq_cst);
     ch->epoch = epoch;
-    if (old != NULL) {
-        old->retired_at = atomic_load_explicit(&t->quiescent, memory_order_seq_cst);
-        old->retired_next = t->retired;
-        t->retired = old;
-        t->retired_count++;
-    }
+    retire(t, old);
     return 0;
+}
+
+void veer__channels_clear(veer__channels *t, veer__channel *ch, uint64_t epoch)
+{
+    veer__active_task *old = atomic_exchange_explicit(&ch->active, NULL, memory_order_seq_cst);
+    ch->epoch = epoch;
+    retire(t, old);
 }
 
 void veer__channels_quiescent(veer__channels *t)

@@ -67,6 +67,10 @@ int veer__channels_switch(veer__channels *t, veer__channel *ch, const char *task
                           uint32_t z_dim, uint64_t epoch, veer_error *err);
 
 /* The act thread's announcement that it holds no veer__active_task pointer. */
+/* Leaves `ch` with no task (its acts get the fallback) at `epoch`; the old task is retired like
+ * a switched-away one. Loop thread. */
+void veer__channels_clear(veer__channels *t, veer__channel *ch, uint64_t epoch);
+
 void veer__channels_quiescent(veer__channels *t);
 
 /* Frees retired tasks the act thread can no longer be reading. Admin thread. Returns how many

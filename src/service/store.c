@@ -225,6 +225,15 @@ static int replay_put(veer__store *s, const Veer__Journal__TaskPut *put)
     return rc;
 }
 
+/* Forgets that the channel's current task is active on it (before the channel is cleared). */
+static void release_active(veer__store *s, veer__channel *ch)
+{
+    veer__active_task *old = atomic_load_explicit(&ch->active, memory_order_relaxed);
+    veer__task *old_task = old ? veer__registry_find(s->registry, old->task) : NULL;
+    if (old_task != NULL && old_task->active_on > 0)
+        old_task->active_on--;
+}
+
 static int replay_switch(veer__store *s, const Veer__Journal__ChannelSwitch *sw)
 {
     veer_error err;
@@ -235,13 +244,23 @@ static int replay_switch(veer__store *s, const Veer__Journal__ChannelSwitch *sw)
         veer__log_warn("journal: cannot restore channel '%s': %s", sw->channel, err.message);
         return rc;
     }
+    /* Epochs never go backwards, even in a journal whose records disagree. */
+    uint64_t epoch = sw->epoch > ch->epoch ? sw->epoch : ch->epoch;
+    if (sw->task[0] == '\0') {
+        release_active(s, ch); /* compaction's record of a channel without a task */
+        veer__channels_clear(s->channels, ch, epoch);
+        return 0;
+    }
     if (t == NULL || t->content->state != VEER__CONTENT_ENCODED) {
-        ch->epoch = sw->epoch; /* epochs still never go backwards */
+        /* The supervisor was told this switch happened, so the channel must not go on with the
+         * task it replaced: it falls back until someone switches it again. */
+        release_active(s, ch);
+        veer__channels_clear(s->channels, ch, epoch);
         veer__log_warn("journal: channel '%s' was switched to task '%s', which is %s; it starts with no task",
                        sw->channel, sw->task, t == NULL ? "missing" : "not encodable");
         return VEER_ENOTASK;
     }
-    return apply_switch(s, ch, t, sw->epoch, &err);
+    return apply_switch(s, ch, t, epoch, &err);
 }
 
 int veer__store_replay(void *ctx, const Veer__Journal__JournalRecord *rec)
@@ -288,12 +307,14 @@ int veer__store_compact(veer__store *s, int force, veer_error *err)
     for (uint32_t i = 0; rc == 0 && i < veer__channels_capacity(s->channels); i++) {
         veer__channel *ch = veer__channels_slot(s->channels, i);
         veer__active_task *a = ch ? atomic_load_explicit(&ch->active, memory_order_relaxed) : NULL;
-        if (a == NULL)
+        /* A channel left without a task (its task could not be restored) still has an epoch
+         * that must never go backwards, so it is written too, with no task. */
+        if (ch == NULL || (a == NULL && ch->epoch == 0))
             continue;
         Veer__Journal__ChannelSwitch sw = VEER__JOURNAL__CHANNEL_SWITCH__INIT;
         sw.channel = ch->name;
-        sw.task = a->task;
-        sw.epoch = a->epoch;
+        sw.task = a ? (char *)a->task : "";
+        sw.epoch = ch->epoch;
         Veer__Journal__JournalRecord rec = VEER__JOURNAL__JOURNAL_RECORD__INIT;
         rec.body_case = VEER__JOURNAL__JOURNAL_RECORD__BODY_CHANNEL_SWITCH;
         rec.channel_switch = &sw;
