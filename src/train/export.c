@@ -303,7 +303,7 @@ int veer__train_export(const veer__trainer *t, const char *path, const char *set
     if (ar.oom)
         goto oom;
     veer__rng rr;
-    veer__rng_init(&rr, c->seed ^ 0xA5A5A5A5ull);
+    veer__rng_init(&rr, c->rng_key ^ 0xA5A5A5A5ull);
     for (size_t i = 0; i < N; i++)
         perm[i] = i;
     for (size_t i = 0; i < R; i++) {

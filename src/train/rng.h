@@ -1,5 +1,5 @@
 /* The trainer's one random number generator: xoshiro256** (Blackman & Vigna, "Scrambled
- * linear pseudorandom number generators", ACM TOMS 2021), seeded through splitmix64 as its
+ * linear pseudorandom number generators", ACM TOMS 2021), initialised through splitmix64 as its
  * authors recommend. Hand-written because it is ten lines and must give the same stream on
  * every platform, which is what makes "same flags, one thread, same bundle" hold; its state
  * is four words, so a checkpoint stores it exactly. Normals use the Box-Muller transform. */

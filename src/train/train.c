@@ -46,7 +46,7 @@ int veer__train_preset(veer_train_config *c, const char *name)
     c->mix_ratio = 0.5f;
     c->noise = 0.2f;
     c->noise_clip = 0.3f;
-    c->seed = 1;
+    c->rng_key = 1;
     c->threads = 1;
     c->holdout = 0.02f;
     c->ref_count = 4096;
@@ -257,7 +257,7 @@ int veer__trainer_create(const veer_train_config *c, const veer__tlog *log, veer
     t->heads = c->action_count ? 1 : c->heads;
     if (c->arch == VEER_TRAIN_TABLE)
         t->heads = 1;
-    veer__rng_init(&t->rng, c->seed);
+    veer__rng_init(&t->rng, c->rng_key);
     for (uint32_t j = 0; j < log->action_dim && c->action_count == 0; j++) {
         t->act_center[j] = 0.5f * (c->low[j] + c->high[j]);
         t->act_half[j] = 0.5f * (c->high[j] - c->low[j]);
@@ -328,7 +328,7 @@ int veer__trainer_create(const veer_train_config *c, const veer__tlog *log, veer
     }
     /* Fixed task vectors for the held-out residual: the sphere of radius sqrt(d). */
     veer__rng hr;
-    veer__rng_init(&hr, c->seed ^ 0x5DEECE66Dull);
+    veer__rng_init(&hr, c->rng_key ^ 0x5DEECE66Dull);
     for (size_t i = 0; i < nh; i++) {
         double ss = 0;
         for (size_t j = 0; j < d; j++) {

@@ -1,8 +1,8 @@
 #!/usr/bin/python3
-"""Writes the fuzz targets' seed corpora (tests/fuzz/corpus/<target>/seed-*) and the small
+"""Writes the fuzz targets' starting corpora (tests/fuzz/corpus/<target>/start-*) and the small
 bundle the service targets serve (tests/fuzz/fixtures/arm-small.veer).
 
-The seeds are small valid inputs of each decoder, plus a few near misses, for the fuzzers to
+The starting inputs are small valid inputs of each decoder, plus a few near misses, for the fuzzers to
 mutate from; reproducers of findings live beside them as repro-* files and are never rewritten
 here. The bundle is an UNTRAINED parcel-arm model with random weights (4 state features, 2
 continuous actions): for exercising decoders only, its actions mean nothing.
@@ -36,7 +36,7 @@ FEATURES = ["gripper_x_m", "gripper_y_m", "parcel_x_m", "gripper_closed"]
 def out(target, name, data: bytes):
     d = os.path.join(HERE, "corpus", target)
     os.makedirs(d, exist_ok=True)
-    with open(os.path.join(d, "seed-" + name), "wb") as f:
+    with open(os.path.join(d, "start-" + name), "wb") as f:
         f.write(data)
 
 
@@ -60,7 +60,7 @@ def bundles():
     with open(os.path.join(HERE, "fixtures", "arm-small.veer"), "wb") as f:
         f.write(data)
     out("bundle", "arm-small.veer", data)
-    # Payload-form seeds: the target frames them with a correct checksum.
+    # Payload-form starting inputs: the target frames them with a correct checksum.
     out("bundle", "arm-small.model", arm.SerializeToString())
     out("bundle", "discrete.model", model("discrete").SerializeToString())
     out("bundle", "bilinear.model", model("discrete", merge="bilinear", bilinear_k=3).SerializeToString())
@@ -215,7 +215,7 @@ def tlog():
 
 
 def main():
-    for d in glob.glob(os.path.join(HERE, "corpus", "*", "seed-*")):
+    for d in glob.glob(os.path.join(HERE, "corpus", "*", "start-*")):
         os.remove(d)
     arm = bundles()
     npy()
@@ -225,8 +225,8 @@ def main():
     journal(arm.state_dim, ref_count)
     client_replies(arm)
     tlog()
-    n = len(glob.glob(os.path.join(HERE, "corpus", "*", "seed-*")))
-    print(f"wrote {n} seeds and fixtures/arm-small.veer")
+    n = len(glob.glob(os.path.join(HERE, "corpus", "*", "start-*")))
+    print(f"wrote {n} starting inputs and fixtures/arm-small.veer")
 
 
 if __name__ == "__main__":

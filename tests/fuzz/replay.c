@@ -1,13 +1,13 @@
-/* The bounded fuzz driver for compilers without libFuzzer (gcc): it replays a seed corpus and
+/* The bounded fuzz driver for compilers without libFuzzer (gcc): it replays a starting corpus and
  * then a fixed number of deterministic mutations of it through a target's
  * LLVMFuzzerTestOneInput, so every decoder's fuzz target runs as an ordinary ctest test under
  * any build, the sanitizer builds included.
  *
- * It takes the libFuzzer options the tests use (-runs=N, -seed=S, -max_total_time=T,
+ * It takes the libFuzzer options the tests use (-runs=N, -max_total_time=T,
  * -max_len=L) and any number of corpus directories or files, so CMake invokes a libFuzzer
  * binary and this driver the same way. Mutations are the classic byte-level ones (bit flips,
  * interesting integers, insertions, deletions, copies, splices between inputs), drawn from a
- * xorshift64* generator (Vigna 2016) seeded by -seed, so a failure reproduces from the seed
+ * xorshift64* generator (Vigna 2016) started from -rng=K (default 1), so a failure reproduces from K
  * and the iteration number printed before each run in verbose mode (VEER_FUZZ_VERBOSE=1).
  * libFuzzer itself is the tool for long coverage-guided runs; this driver keeps the findings
  * replayed forever and catches regressions near them. */
@@ -200,14 +200,14 @@ int main(int argc, char **argv)
 {
     long runs = 20000, max_len = 0;
     double max_time = 0;
-    uint64_t seed = 1;
+    uint64_t rng_key = 1;
     if (LLVMFuzzerInitialize)
         LLVMFuzzerInitialize(&argc, &argv);
     for (int i = 1; i < argc; i++) {
         if (strncmp(argv[i], "-runs=", 6) == 0)
             runs = atol(argv[i] + 6);
-        else if (strncmp(argv[i], "-seed=", 6) == 0)
-            seed = strtoull(argv[i] + 6, NULL, 10);
+        else if (strncmp(argv[i], "-rng=", 5) == 0)
+            rng_key = strtoull(argv[i] + 5, NULL, 10);
         else if (strncmp(argv[i], "-max_total_time=", 16) == 0)
             max_time = atof(argv[i] + 16);
         else if (strncmp(argv[i], "-max_len=", 9) == 0)
@@ -217,7 +217,7 @@ int main(int argc, char **argv)
         else
             add_path(argv[i]);
     }
-    rng_state = seed ? seed * 0x9E3779B97F4A7C15ULL : 0x9E3779B97F4A7C15ULL;
+    rng_state = rng_key ? rng_key * 0x9E3779B97F4A7C15ULL : 0x9E3779B97F4A7C15ULL;
     int verbose = getenv("VEER_FUZZ_VERBOSE") != NULL;
 
     /* Every corpus file first, exactly as stored: the reproducers of past findings are here. */

@@ -36,7 +36,7 @@ GOAL_FLOOR_SLIPPERY = 0.55
 
 
 def train(tmp, slip, extra=()):
-    wh.make_log(str(tmp), slip, per_pair=40, seed=3)
+    wh.make_log(str(tmp), slip, per_pair=40, rng_key=3)
     out = os.path.join(str(tmp), "floor.veer")
     cmd = [VEER, "train", "--preset", "tabular", "--states", f"{tmp}/states.npy",
            "--actions", f"{tmp}/actions.npy", "--next-states", f"{tmp}/next_states.npy",
@@ -123,7 +123,7 @@ def test_bellman_residual_goes_down(deterministic):
 
 
 def test_cli_refuses_bad_logs(tmp_path):
-    wh.make_log(str(tmp_path), 0.0, per_pair=1, seed=3)
+    wh.make_log(str(tmp_path), 0.0, per_pair=1, rng_key=3)
     a = np.load(tmp_path / "actions.npy")
     a[7] = 5  # beyond the declared count
     np.save(tmp_path / "actions.npy", a)
@@ -139,7 +139,7 @@ def test_cli_refuses_bad_logs(tmp_path):
     assert p.returncode == 2 and "--discrete or --continuous" in p.stderr
     p = subprocess.run(base + ["--discrete", "5", "--batch", "1"], capture_output=True, text=True)
     assert p.returncode == 2 and "--batch" in p.stderr
-    wh.make_log(str(tmp_path), 0.0, per_pair=1, seed=3)  # a good log again
+    wh.make_log(str(tmp_path), 0.0, per_pair=1, rng_key=3)  # a good log again
     p = subprocess.run(base + ["--discrete", "5", "--arch", "table"], capture_output=True,
                        text=True)
     assert p.returncode == 2 and "--state-counts" in p.stderr

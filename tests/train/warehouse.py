@@ -86,10 +86,10 @@ def normalised(P, r, gamma, pi):
     return (policy_return(P, r, gamma, pi) - j_rand) / (j_star - j_rand)
 
 
-def make_log(path, slip, per_pair, seed):
+def make_log(path, slip, per_pair, rng_key):
     """A full-coverage log: every (cell, action) pair per_pair times, next cells sampled from
     the exact dynamics. Writes states/actions/next_states .npy (float32) into path."""
-    rng = np.random.default_rng(seed)
+    rng = np.random.default_rng(rng_key)
     cells = np.array(free_cells(), dtype=np.float32)
     P = transition_matrix(slip)
     s_idx = np.repeat(np.arange(len(cells)), N_ACTIONS * per_pair)
@@ -102,9 +102,9 @@ def make_log(path, slip, per_pair, seed):
     return len(s_idx)
 
 
-def dense_rewards(count, seed):
+def dense_rewards(count, rng_key):
     """Half: a few +1 and -1 cells; half: Gaussian noise smoothed over neighbouring cells."""
-    rng = np.random.default_rng(seed)
+    rng = np.random.default_rng(rng_key)
     cells = free_cells()
     n = len(cells)
     out = []
@@ -217,7 +217,7 @@ def one_hot(actions):
     return pi
 
 
-def evaluate(served, slip, gamma, n_dense=20, seed=7):
+def evaluate(served, slip, gamma, n_dense=20, rng_key=7):
     """Scores of the served policies: every goal cell, and n_dense dense rewards with the
     rank-d projection bound beside each."""
     cells = np.array(free_cells(), dtype=np.float32)
@@ -231,7 +231,7 @@ def evaluate(served, slip, gamma, n_dense=20, seed=7):
         goal_scores.append(normalised(P, r, gamma, one_hot(served.act(cells, z))))
     Bm = served.backward(cells).astype(np.float64)
     dense, bound = [], []
-    for r in dense_rewards(n_dense, seed):
+    for r in dense_rewards(n_dense, rng_key):
         z = served.encode(TASK_SAMPLES, cells, r)
         dense.append(normalised(P, r, gamma, one_hot(served.act(cells, z))))
         # The best a rank-d B allows: r projected on span(B) (least squares, uniform weights),
@@ -255,7 +255,7 @@ if __name__ == "__main__":
     ap.add_argument("train_flags", nargs="*", help="extra flags for veer train (after --)")
     args = ap.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
-        make_log(tmp, args.slip, args.per_pair, seed=3)
+        make_log(tmp, args.slip, args.per_pair, rng_key=3)
         out = os.path.join(tmp, "floor.veer")
         cmd = [os.path.join(args.build, "bin", "veer"), "train", "--preset", "tabular",
                "--states", f"{tmp}/states.npy", "--actions", f"{tmp}/actions.npy",

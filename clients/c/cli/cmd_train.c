@@ -35,7 +35,7 @@ static void usage(FILE *to)
         "          --b-features I,...  --no-b-norm  --embed-std X\n"
         "training: --steps N  --batch N  --lr X (all three)  --lr-f X  --lr-b X  --lr-actor X\n"
         "          --discount X  --tau X  --ortho X  --mix-ratio X  --noise X  --noise-clip X\n"
-        "          --seed N  --threads N  --holdout FRACTION  --ref-count N\n"
+        "          --rng-key N  --threads N  --holdout FRACTION  --ref-count N\n"
         "output:   --eval-every N  --checkpoint FILE  --checkpoint-every N  --curve FILE\n"
         "          --model-version LABEL  --fallback V[,V...]  --quiet\n"
         "\n"
@@ -256,8 +256,8 @@ static int run(int argc, char **argv)
             rc = parse_float(f, v, &c.noise);
         } else if (IS("--noise-clip")) {
             rc = parse_float(f, v, &c.noise_clip);
-        } else if (IS("--seed")) {
-            rc = parse_u64(f, v, 0, UINT64_MAX, &c.seed);
+        } else if (IS("--rng-key")) {
+            rc = parse_u64(f, v, 0, UINT64_MAX, &c.rng_key);
         } else if (IS("--threads")) {
             rc = parse_u64(f, v, 1, 256, &u);
             c.threads = (int)u;

@@ -47,7 +47,7 @@ for i in $(seq 1 "$chunks"); do
         --states log/states.npy --actions log/actions.npy --next-states log/next_states.npy \
         --dones log/dones.npy --continuous -12:12,-6:6 --step 0.02 --features "$features" \
         --preset small --z-dim "$zdim" --hidden 256 --b-hidden 256 --batch 256 --discount 0.98 \
-        --seed 1 --threads 1 --eval-every 500 --checkpoint-every 1000 \
+        --rng-key 1 --threads 1 --eval-every 500 --checkpoint-every 1000 \
         --fallback 0,0 --model-version "parcel-arm-s$steps" \
         --checkpoint train.ckpt --curve curve.csv --steps "$steps" --out "chunk-$steps.veer" --quiet
     last=$(( $(date +%s) - t0 ))
