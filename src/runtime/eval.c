@@ -1,6 +1,7 @@
 /* The networks' raw outputs for tools, checks, the task encoder and the trainer's evaluation:
  * F(s, a, z), B(s) and the actor, for any number of rows, in slices that fit the workspace.
- * Unlike acting, these report exactly what the networks compute, non-finite values included. */
+ * Unlike acting, these report exactly what the networks compute, non-finite values included.
+ * A backward-only workspace (workspace.h) has no room for F or the actor; those calls refuse it. */
 #include <string.h>
 
 #include "runtime/workspace.h"
@@ -33,7 +34,8 @@ static int eval_slices(veer_workspace *ws, const veer__net *net, size_t cap, siz
 int veer_eval_forward(veer_workspace *ws, size_t n, const float *states, const float *actions,
                       const float *zs, float *out)
 {
-    if (ws == NULL || states == NULL || actions == NULL || zs == NULL || out == NULL)
+    if (ws == NULL || states == NULL || actions == NULL || zs == NULL || out == NULL ||
+        ws->backward_only)
         return VEER_EINVAL;
     return eval_slices(ws, &ws->bundle->forward, ws->f_rows, n, states, actions, zs, out);
 }
@@ -47,7 +49,8 @@ int veer_eval_backward(veer_workspace *ws, size_t n, const float *states, float 
 
 int veer_eval_actor(veer_workspace *ws, size_t n, const float *states, const float *zs, float *out)
 {
-    if (ws == NULL || states == NULL || zs == NULL || out == NULL || !ws->bundle->has_actor)
+    if (ws == NULL || states == NULL || zs == NULL || out == NULL || !ws->bundle->has_actor ||
+        ws->backward_only)
         return VEER_EINVAL;
     return eval_slices(ws, &ws->bundle->actor, ws->max_batch, n, states, NULL, zs, out);
 }

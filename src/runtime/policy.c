@@ -141,7 +141,8 @@ static int indices_valid(const veer_bundle *b, size_t n, const float *states)
 int veer_act_batch(veer_workspace *ws, size_t n, const float *states, const float *z,
                    float *actions, float *values, uint32_t *flags)
 {
-    if (ws == NULL || states == NULL || z == NULL || actions == NULL)
+    /* A backward-only workspace has no buffers for F or the actor (workspace.h). */
+    if (ws == NULL || states == NULL || z == NULL || actions == NULL || ws->backward_only)
         return VEER_EINVAL;
     const veer_model_info *info = &ws->bundle->info;
     if (!veer__k_all_finite(n * info->state_dim, states) || !veer__k_all_finite(info->z_dim, z))

@@ -10,8 +10,10 @@
  * accumulated in double precision, and LAPACK is called through its _work entry points so that
  * every allocation goes through veer's hook.
  *
- * Only the public runtime API is used (bundle info, a private workspace, B); the encoder owns
- * its workspace for the length of one call, so concurrent calls share nothing.
+ * Besides the public runtime API (bundle info, B), the encoder uses one private call: a
+ * backward-only workspace (runtime/workspace.h), since sizing and clearing F's action_count-times
+ * larger buffers would cost more than B itself on small sets. The encoder owns its workspace for
+ * the length of one call, so concurrent calls share nothing.
  */
 #include "veer/runtime.h"
 
@@ -23,6 +25,7 @@
 #include <string.h>
 
 #include "base/base.h"
+#include "runtime/workspace.h"
 
 /* States per B call. Large enough that the layers run as real matrix products (OpenBLAS's
  * sgemm reaches its speed well below this), small enough that the scratch stays a few MiB
@@ -427,7 +430,7 @@ static int task_scratch_init(const veer_bundle *bundle, const task_plan *plan, i
     size_t chunk = plan->n < VEER__TASK_CHUNK ? plan->n : VEER__TASK_CHUNK;
     memset(t, 0, sizeof *t);
     if (plan->source != VEER_TASK_REFERENCE) {
-        int rc = veer_workspace_create(bundle, (uint32_t)chunk, &t->ws, err);
+        int rc = veer__workspace_create_backward(bundle, (uint32_t)chunk, &t->ws, err);
         if (rc != 0)
             return rc;
         t->b = veer__malloc(sizeof(float) * chunk * d);

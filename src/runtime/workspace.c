@@ -3,7 +3,9 @@
  * actor at the largest row count each can see (discrete acting evaluates F on every action of
  * every state in a slice at once). Creating one also pins OpenBLAS to a single thread: a
  * one-state product is too small to gain from a second thread, and on a shared machine a
- * second thread makes latency depend on whatever else runs on the other core. */
+ * second thread makes latency depend on whatever else runs on the other core. The task encoder
+ * takes a backward-only workspace (B's buffers alone): F's rows are action_count times B's and
+ * would dominate both the size and the time to create it. */
 #include <cblas.h>
 #include <string.h>
 
@@ -20,8 +22,9 @@ static size_t lines(size_t floats)
     return (floats + 15) & ~(size_t)15;
 }
 
-int veer_workspace_create(const veer_bundle *bundle, uint32_t max_batch, veer_workspace **out,
-                          veer_error *err)
+/* Builds a workspace: for F, B and the actor, or (backward_only) for B alone. */
+static int workspace_build(const veer_bundle *bundle, uint32_t max_batch, int backward_only,
+                           veer_workspace **out, veer_error *err)
 {
     veer_error_clear(err);
     if (out == NULL || bundle == NULL)
@@ -33,17 +36,19 @@ int veer_workspace_create(const veer_bundle *bundle, uint32_t max_batch, veer_wo
 
     const veer_model_info *info = &bundle->info;
     size_t per_state = info->action_kind == VEER_ACTION_DISCRETE ? info->action_count : 1;
-    size_t f_rows = (size_t)max_batch * per_state;
+    size_t f_rows = backward_only ? 0 : (size_t)max_batch * per_state;
     if (f_rows > VEER__MAX_ROWS) /* OpenBLAS takes row counts as int */
         return veer__error_set(err, VEER_EINVAL, "max_batch",
                                "max_batch x action_count is %zu rows; at most %u", f_rows,
                                VEER__MAX_ROWS);
     size_t sizes[3] = {0, 0, 0};
-    veer__net_buf_sizes(&bundle->forward, f_rows, sizes);
     veer__net_buf_sizes(&bundle->backward, max_batch, sizes);
-    if (bundle->has_actor)
-        veer__net_buf_sizes(&bundle->actor, max_batch, sizes);
-    size_t n_actions = (size_t)max_batch * info->action_dim;
+    if (!backward_only) {
+        veer__net_buf_sizes(&bundle->forward, f_rows, sizes);
+        if (bundle->has_actor)
+            veer__net_buf_sizes(&bundle->actor, max_batch, sizes);
+    }
+    size_t n_actions = backward_only ? 0 : (size_t)max_batch * info->action_dim;
     /* Every factor is capped (VEER__MAX_DIM, VEER__MAX_BATCH), so these sums cannot overflow. */
     size_t floats = lines(sizes[0]) + 2 * lines(sizes[1]) + lines(sizes[2]) + lines(n_actions) +
                     lines(f_rows) + 2 * lines(max_batch);
@@ -63,8 +68,9 @@ int veer_workspace_create(const veer_bundle *bundle, uint32_t max_batch, veer_wo
     ws->block = p;
     ws->bundle = bundle;
     ws->max_batch = max_batch;
+    ws->backward_only = backward_only;
     ws->f_rows = f_rows;
-    ws->bufs.rows = f_rows;
+    ws->bufs.rows = backward_only ? max_batch : f_rows;
     ws->bufs.in = p;
     p += lines(sizes[0]);
     ws->bufs.ping = p;
@@ -84,6 +90,18 @@ int veer_workspace_create(const veer_bundle *bundle, uint32_t max_batch, veer_wo
     openblas_set_num_threads(1);
     *out = ws;
     return 0;
+}
+
+int veer_workspace_create(const veer_bundle *bundle, uint32_t max_batch, veer_workspace **out,
+                          veer_error *err)
+{
+    return workspace_build(bundle, max_batch, 0, out, err);
+}
+
+int veer__workspace_create_backward(const veer_bundle *bundle, uint32_t max_batch,
+                                    veer_workspace **out, veer_error *err)
+{
+    return workspace_build(bundle, max_batch, 1, out, err);
 }
 
 void veer_workspace_destroy(veer_workspace *ws)
