@@ -304,11 +304,27 @@ static void serve_one(veer__act *a)
     a->acted_on = NULL;
 }
 
+/* Waits for the next request. With spin_us set it first polls without sleeping, so a request
+ * that arrives soon is taken without the cost of waking a sleeping thread. */
+static int act_wait(veer__act *a)
+{
+    if (a->cfg.spin_us != 0) {
+        uint64_t until = veer__now_ns() + (uint64_t)a->cfg.spin_us * 1000u;
+        do {
+            if (veer__wire_recv(a->socket, &a->msg, ZMQ_DONTWAIT) == 0)
+                return 0;
+            if (errno != EAGAIN)
+                return -1;
+        } while (veer__now_ns() < until && !atomic_load_explicit(&a->stop, memory_order_acquire));
+    }
+    return veer__wire_recv(a->socket, &a->msg, 0);
+}
+
 static void *act_main(void *arg)
 {
     veer__act *a = arg;
     for (;;) {
-        if (veer__wire_recv(a->socket, &a->msg, 0) == 0) {
+        if (act_wait(a) == 0) {
             serve_one(a);
         } else if (errno == ETERM) {
             break;

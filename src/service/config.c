@@ -54,6 +54,10 @@ static const opt_desc OPTIONS[] = {
      "deadline (then it gets the fallback at once). 99 is safe for machines with headroom; on a\n"
      "loaded machine whose p99 passes the deadline every act falls back, so a lower value\n"
      "trades a few late actions for many fresh ones."},
+    {"--act-spin-us", "VEER_ACT_SPIN_US", OPT_U32, OFF(act_spin_us), "0", 0, 1000, 0,
+     "Microseconds the act thread polls its socket without sleeping before it blocks for the\n"
+     "next request (0: block at once). Spinning saves the thread's wake-up on every request at\n"
+     "the price of a busy core: use it only with a core to spare for the act thread."},
     {"--max-message-bytes", "VEER_MAX_MESSAGE_BYTES", OPT_U32, OFF(max_message_bytes),
      "16777216", 1024, 1073741824, 0,
      "Largest admin request handled. Up to twice this gets an EMSGSIZE error reply; beyond\n"

@@ -23,6 +23,7 @@ typedef struct veer__config {
     uint32_t act_auth;             /* 1: controllers must authenticate with CURVE too */
     uint32_t default_deadline_us;
     uint32_t deadline_percentile;  /* of policy time, predicting whether an act finishes late */
+    uint32_t act_spin_us;          /* act thread: poll this long before blocking (0: never) */
     uint32_t max_message_bytes;    /* admin socket */
     uint32_t act_max_message_bytes;
     uint32_t max_samples;          /* per task: samples, goals or reference rewards */

@@ -246,6 +246,7 @@ int main(int argc, char **argv)
                              .channels = channels,
                              .default_deadline_us = d.cfg.default_deadline_us,
                              .deadline_percentile = d.cfg.deadline_percentile,
+                             .spin_us = d.cfg.act_spin_us,
                              .max_message_bytes = d.cfg.act_max_message_bytes,
                              .server_secret_key = auth && d.cfg.act_auth ? secret : NULL,
                              .monitors_off = !d.cfg.monitors,

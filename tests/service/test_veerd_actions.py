@@ -17,9 +17,10 @@ def runtime(lib, b):
     return veerlib.Runtime(lib, b.data)
 
 
-@pytest.mark.parametrize("kind", ["tcp", "ipc"])
-def test_actions_equal_in_process_runtime(lib, bundle, start, kind):
-    d, c = start(bundle, kind)
+@pytest.mark.parametrize("kind,extra", [("tcp", ()), ("ipc", ()), ("tcp", ("--act-spin-us", "200"))])
+def test_actions_equal_in_process_runtime(lib, bundle, start, kind, extra):
+    """The wire's actions are the in-process runtime's, also with the act thread spinning."""
+    d, c = start(bundle, kind, extra)
     rng = np.random.default_rng(3)
     s = bundle.states[:64]
     r = rng.normal(size=64).astype(np.float32)
