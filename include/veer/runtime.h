@@ -167,7 +167,7 @@ typedef enum veer_task_source {
 typedef struct veer_task_spec {
     veer_task_source source;
     uint32_t count;      /* samples, goals, or rewards (REFERENCE: must equal reference_count) */
-    const float *states; /* count x state_dim; NULL for REFERENCE */
+    const float *states; /* count x state_dim; must be NULL for REFERENCE (VEER_EFIELD) */
     const float *values; /* count rewards (SAMPLES, REFERENCE) or weights (GOALS) */
     int rescale;         /* VEER_OPT_DEFAULT, 0 or 1: rescale z to the bundle's rescale_norm */
     int center;          /* VEER_OPT_DEFAULT, 0 or 1: subtract the mean reward first (not GOALS) */
@@ -184,7 +184,8 @@ void veer_task_spec_init(veer_task_spec *spec, veer_task_source source);
 
 typedef struct veer_task_report {
     double r2;          /* expressiveness: R² of the least-squares fit of r on [B(s), 1];
-                           NaN for GOALS or when count <= z_dim + 1 */
+                           NaN for GOALS, when count <= z_dim + 1, or when all rewards are
+                           equal (nothing to explain); computed only when a report is asked */
     double norm_raw;    /* ||z|| before rescaling */
     double mean_reward; /* the mean subtracted when centring (0 otherwise) */
 } veer_task_report;
