@@ -1,11 +1,7 @@
-/* Writing float32 arrays as NumPy .npy files (format version 1.0).
- *
- * Hand-written because Debian carries no maintained C library for .npy and the format is small:
- * the magic "\x93NUMPY", version 1.0, a little-endian uint16 header length, an ASCII header dict
- * {'descr': '<f4', 'fortran_order': False, 'shape': (...), } padded with spaces and a newline so
- * the data starts on a 64-byte boundary, then the raw little-endian data in C order (NumPy's
- * format description, numpy.lib.format). The file is written under a temporary name and renamed
- * into place, so a reader never sees half a file.
+/* Writing float32 arrays as NumPy .npy files (format version 1.0), through libveer's writer.
+ * libveer's writer (src/base/npy.h) is hand-written because Debian carries no maintained C
+ * library for .npy; it writes under a temporary name and renames, so a reader never sees half a
+ * file.
  */
 #ifndef VEER_DEMO_NPY_WRITE_H
 #define VEER_DEMO_NPY_WRITE_H

@@ -100,12 +100,12 @@ static void npy_writer_reports_an_unwritable_path(void **state)
     assert_int_equal(veer_demo_npy_write_f32(path, data, 2, 2, &err), VEER_EIO);
     assert_string_equal(err.field, "path");
     assert_non_null(strstr(err.message, "missing/x.npy"));
-    /* A good path: the file is there, its .part is not. */
+    /* A good path: the file is there, its temporary (.tmp, renamed into place) is not. */
     snprintf(path, sizeof path, "%s/x.npy", dir);
     assert_int_equal(veer_demo_npy_write_f32(path, data, 2, 2, &err), 0);
     assert_int_equal(access(path, F_OK), 0);
     char part[300];
-    snprintf(part, sizeof part, "%s.part", path);
+    snprintf(part, sizeof part, "%s.tmp", path);
     assert_int_not_equal(access(part, F_OK), 0);
     unlink(path);
     rmdir(dir);
