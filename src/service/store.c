@@ -128,10 +128,16 @@ int veer__store_drop(veer__store *s, const char *name, veer_error *err)
 }
 
 /* Publishes `t` on `ch` with `epoch` and keeps the tasks' active_on counts. */
+/* The registry's task now active on `ch`, or NULL. Loop thread. */
+static veer__task *active_task_of(veer__store *s, veer__channel *ch)
+{
+    veer__active_task *a = atomic_load_explicit(&ch->active, memory_order_relaxed);
+    return a ? veer__registry_find(s->registry, a->task) : NULL;
+}
+
 static int apply_switch(veer__store *s, veer__channel *ch, veer__task *t, uint64_t epoch, veer_error *err)
 {
-    veer__active_task *old = atomic_load_explicit(&ch->active, memory_order_relaxed);
-    veer__task *old_task = old ? veer__registry_find(s->registry, old->task) : NULL;
+    veer__task *old_task = active_task_of(s, ch);
     int rc = veer__channels_switch(s->channels, ch, t->name, t->content->z, s->info->z_dim, epoch, err);
     if (rc < 0)
         return rc;
@@ -225,13 +231,13 @@ static int replay_put(veer__store *s, const Veer__Journal__TaskPut *put)
     return rc;
 }
 
-/* Forgets that the channel's current task is active on it (before the channel is cleared). */
-static void release_active(veer__store *s, veer__channel *ch)
+/* Leaves `ch` with no task at `epoch`; its former task is no longer active on it. */
+static void clear_channel(veer__store *s, veer__channel *ch, uint64_t epoch)
 {
-    veer__active_task *old = atomic_load_explicit(&ch->active, memory_order_relaxed);
-    veer__task *old_task = old ? veer__registry_find(s->registry, old->task) : NULL;
+    veer__task *old_task = active_task_of(s, ch);
     if (old_task != NULL && old_task->active_on > 0)
         old_task->active_on--;
+    veer__channels_clear(s->channels, ch, epoch);
 }
 
 static int replay_switch(veer__store *s, const Veer__Journal__ChannelSwitch *sw)
@@ -247,15 +253,13 @@ static int replay_switch(veer__store *s, const Veer__Journal__ChannelSwitch *sw)
     /* Epochs never go backwards, even in a journal whose records disagree. */
     uint64_t epoch = sw->epoch > ch->epoch ? sw->epoch : ch->epoch;
     if (sw->task[0] == '\0') {
-        release_active(s, ch); /* compaction's record of a channel without a task */
-        veer__channels_clear(s->channels, ch, epoch);
+        clear_channel(s, ch, epoch); /* compaction's record of a channel without a task */
         return 0;
     }
     if (t == NULL || t->content->state != VEER__CONTENT_ENCODED) {
         /* The supervisor was told this switch happened, so the channel must not go on with the
          * task it replaced: it falls back until someone switches it again. */
-        release_active(s, ch);
-        veer__channels_clear(s->channels, ch, epoch);
+        clear_channel(s, ch, epoch);
         veer__log_warn("journal: channel '%s' was switched to task '%s', which is %s; it starts with no task",
                        sw->channel, sw->task, t == NULL ? "missing" : "not encodable");
         return VEER_ENOTASK;
