@@ -196,3 +196,48 @@ def test_sigterm_answers_acts_already_queued(start, tmp_path):
     assert "SIGTERM: stopping" in d.log()
     assert sorted(r.act.seq for r in got) == list(range(n))
     assert all(r.WhichOneof("body") == "act" and r.act.task == "t" for r in got)
+
+
+def test_task_that_no_longer_encodes_leaves_its_channel_on_the_fallback(continuous_bundle, start,
+                                                                        tmp_path):
+    """Restarted on a model whose states are longer (24 features instead of 12), the stored goal
+    task cannot be re-encoded: veerd still starts, keeps the task visible but unusable, and the
+    channel that was switched to it answers with the new model's fallback action and NO_TASK
+    instead of acting on a vector that belongs to another model (DESIGN.md invariant 3). The
+    channel's epoch is kept, a switch to the broken task is refused naming the field, and a task
+    put for the new model works as usual."""
+    from veer import bundle as vb
+    from veer import synth
+    s = continuous_bundle.states
+    state = tmp_path / "state"
+    d, c = start(continuous_bundle, state_dir=state)
+    c.put_goals("park", s[100:102], [1.0, 0.25])
+    assert c.switch("arm-1", "park").channel.epoch == 1
+    assert c.switch("arm-1", "park").channel.epoch == 2
+    assert d.stop() == 0
+
+    m, _, wide_states = synth.build_random(synth.preset_layout("small"), rng_key=5, n_states=300)
+    wide_path = tmp_path / "wide.veer"
+    vb.write_file_atomic(str(wide_path), vb.pack_bundle(m))
+    wide = type(continuous_bundle)(wide_path, np.asarray(wide_states, np.float32), None)
+    d2, c2 = start(wide, state_dir=state)
+    log = d2.log()
+    assert "task 'park' does not encode for the loaded model" in log
+    assert "channel 'arm-1' was switched to task 'park'" in log and "starts with no task" in log
+    listed = {t.name: t for t in c2.list_tasks().tasks.tasks}
+    assert list(listed) == ["park"] and not listed["park"].encoded
+    assert [(x.name, x.task, x.epoch) for x in c2.list_channels().channels.channels] == [("arm-1", "", 2)]
+
+    fallback = list(c2.describe().describe.fallback_action)
+    r = c2.do_act("arm-1", wide.states[0], seq=1, deadline_us=500000).act
+    assert r.flags == harness.ACT_FALLBACK | harness.ACT_NO_TASK and r.task == ""
+    np.testing.assert_array_equal(r.action, np.asarray(fallback, np.float32))
+
+    harness.expect_error(c2.switch("arm-1", "park"), "ENOTREADY", "switch_channel.task")
+    assert [(x.name, x.task, x.epoch) for x in c2.list_channels().channels.channels] == [("arm-1", "", 2)]
+
+    c2.put_goals("park-wide", wide.states[10:11], [1.0])
+    assert c2.switch("arm-1", "park-wide").channel.epoch == 3
+    r = c2.do_act("arm-1", wide.states[0], seq=2, deadline_us=500000).act
+    assert r.flags & harness.ACT_FALLBACK == 0 and r.task == "park-wide" and r.epoch == 3
+    assert c2.drop("park").WhichOneof("body") == "done"
