@@ -12,6 +12,7 @@
 #include <errno.h>
 #include <math.h>
 #include <pthread.h>
+#include <sched.h>
 #include <stdio.h>
 #include <string.h>
 
@@ -430,8 +431,21 @@ int veer__act_start(const veer__act_config *cfg, veer__act **out, veer_error *er
         goto fail;
     /* pthread_create is a full barrier, which is what libzmq asks for when a socket moves to
      * another thread. */
-    if (pthread_create(&a->thread, NULL, act_main, a) != 0) {
-        rc = veer__error_set(err, VEER_EIO, "act", "cannot start the act thread");
+    pthread_attr_t attr;
+    pthread_attr_init(&attr);
+    if (cfg->priority != 0) {
+        /* Set at creation, so the thread never serves a request at ordinary priority. */
+        struct sched_param sp = {.sched_priority = (int)cfg->priority};
+        pthread_attr_setinheritsched(&attr, PTHREAD_EXPLICIT_SCHED);
+        pthread_attr_setschedpolicy(&attr, SCHED_FIFO);
+        pthread_attr_setschedparam(&attr, &sp);
+    }
+    int prc = pthread_create(&a->thread, &attr, act_main, a);
+    pthread_attr_destroy(&attr);
+    if (prc != 0) {
+        rc = veer__error_set(err, prc == EPERM ? VEER_ECONFIG : VEER_EIO, "act",
+                             "cannot start the act thread%s: %s",
+                             cfg->priority ? " at SCHED_FIFO priority" : "", strerror(prc));
         goto fail;
     }
     a->thread_started = 1;

@@ -58,6 +58,16 @@ static const opt_desc OPTIONS[] = {
      "Microseconds the act thread polls its socket without sleeping before it blocks for the\n"
      "next request (0: block at once). Spinning saves the thread's wake-up on every request at\n"
      "the price of a busy core: use it only with a core to spare for the act thread."},
+    {"--act-priority", "VEER_ACT_PRIORITY", OPT_U32, OFF(act_priority), "0", 0, 99, 0,
+     "SCHED_FIFO priority (1 to 99) for the act thread and libzmq's I/O threads, so other work\n"
+     "on the machine cannot delay an act (0: ordinary scheduling). Needs CAP_SYS_NICE or an\n"
+     "RLIMIT_RTPRIO at least this high (systemd: LimitRTPRIO=); veerd refuses to start without.\n"
+     "Keep it below the priorities of the machine's own control loops."},
+    {"--cpu-latency-us", "VEER_CPU_LATENCY_US", OPT_STR, OFF(cpu_latency), NULL, 0, 0, 0,
+     "Hold a CPU wake-up latency request of this many microseconds (0 to 100000) through\n"
+     "/dev/cpu_dma_latency while veerd runs, so idle CPUs do not sleep too deeply to answer in\n"
+     "time (empty: no request). It applies to the whole machine and costs power; needs root or\n"
+     "write access to that device."},
     {"--max-message-bytes", "VEER_MAX_MESSAGE_BYTES", OPT_U32, OFF(max_message_bytes),
      "16777216", 1024, 1073741824, 0,
      "Largest admin request handled. Up to twice this gets an EMSGSIZE error reply; beyond\n"
@@ -178,6 +188,18 @@ static int check_whole(veer__config *cfg, const int given[OPTION_COUNT], veer_er
                                "--allowed-keys needs --server-key: the server's secret key file");
     if (cfg->act_auth && cfg->server_key_path[0] == '\0')
         return veer__error_set(err, VEER_ECONFIG, "--act-auth", "--act-auth needs --server-key and --allowed-keys");
+    cfg->cpu_latency_on = cfg->cpu_latency[0] != '\0';
+    if (cfg->cpu_latency_on) {
+        char *end = NULL;
+        errno = 0;
+        unsigned long long v = strtoull(cfg->cpu_latency, &end, 10);
+        if (errno != 0 || end == cfg->cpu_latency || *end != '\0' || cfg->cpu_latency[0] == '-' || v > 100000)
+            return veer__error_set(err, VEER_ECONFIG, "--cpu-latency-us",
+                                   "--cpu-latency-us: expected microseconds from 0 to 100000, or empty "
+                                   "for none; got '%s'",
+                                   cfg->cpu_latency);
+        cfg->cpu_latency_us = (uint32_t)v;
+    }
     if (cfg->state_dir[0] == '\0')
         return veer__error_set(err, VEER_ECONFIG, "--state-dir", "--state-dir must not be empty");
     return 0;

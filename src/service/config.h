@@ -24,6 +24,10 @@ typedef struct veer__config {
     uint32_t default_deadline_us;
     uint32_t deadline_percentile;  /* of policy time, predicting whether an act finishes late */
     uint32_t act_spin_us;          /* act thread: poll this long before blocking (0: never) */
+    uint32_t act_priority;         /* SCHED_FIFO priority of the act and libzmq threads (0: off) */
+    char cpu_latency[VEER__CONFIG_STR_MAX]; /* as given; "" when off */
+    int cpu_latency_on;            /* 1: hold /dev/cpu_dma_latency at cpu_latency_us */
+    uint32_t cpu_latency_us;
     uint32_t max_message_bytes;    /* admin socket */
     uint32_t act_max_message_bytes;
     uint32_t max_samples;          /* per task: samples, goals or reference rewards */

@@ -26,6 +26,7 @@
 #include "service/journal.h"
 #include "service/log.h"
 #include "service/ops.h"
+#include "service/rt.h"
 #include "service/store.h"
 #include "veer/drift.h"
 
@@ -172,6 +173,18 @@ int main(int argc, char **argv)
         return config_exit(&err);
     }
 
+    /* Real-time tuning is asked for explicitly, so a refusal stops veerd before it touches
+     * the state directory rather than serving at a priority nobody chose (rt.h). The latency
+     * request lasts as long as the descriptor: until the end of main, or the process. */
+    int cpu_latency_fd = -1;
+    if (d.cfg.act_priority != 0 && veer__rt_check_fifo(d.cfg.act_priority, "--act-priority", &err) < 0)
+        return config_exit(&err);
+    if (d.cfg.cpu_latency_on) {
+        if (veer__rt_hold_cpu_latency(d.cfg.cpu_latency_us, "--cpu-latency-us", &cpu_latency_fd, &err) < 0)
+            return config_exit(&err);
+        veer__log_info("holding a CPU wake-up latency request of %u us", d.cfg.cpu_latency_us);
+    }
+
     veer_bundle *bundle = NULL;
     if (veer_bundle_open(d.cfg.bundle_path, &bundle, &err) < 0) {
         veer__log_error("--bundle: cannot load '%s': %s (%s%s%s)", d.cfg.bundle_path, err.message,
@@ -219,6 +232,13 @@ int main(int argc, char **argv)
         veer__log_error("cannot create the ZeroMQ context");
         goto fail_journal;
     }
+    /* Before the first socket: libzmq starts its I/O threads with it, at the priority set
+     * here (the permission was proven at start, rt.h). */
+    if (d.cfg.act_priority != 0 && veer__rt_zmq_fifo(zctx, d.cfg.act_priority, &err) < 0) {
+        veer__log_error("%s", err.message);
+        d.loop = uv_default_loop();
+        goto fail_zmq;
+    }
     d.loop = uv_default_loop();
     if (auth) {
         if (veer__zap_open(zctx, &keys, &d.zap, &err) < 0) {
@@ -247,6 +267,7 @@ int main(int argc, char **argv)
                              .default_deadline_us = d.cfg.default_deadline_us,
                              .deadline_percentile = d.cfg.deadline_percentile,
                              .spin_us = d.cfg.act_spin_us,
+                             .priority = d.cfg.act_priority,
                              .max_message_bytes = d.cfg.act_max_message_bytes,
                              .server_secret_key = auth && d.cfg.act_auth ? secret : NULL,
                              .monitors_off = !d.cfg.monitors,
@@ -323,6 +344,8 @@ fail_tables:
     veer_bundle_close(bundle);
     veer__keyset_free(&keys);
     memset(secret, 0, sizeof secret);
+    if (cpu_latency_fd >= 0)
+        close(cpu_latency_fd);
     if (exit_code == 0)
         veer__log_info("stopped cleanly; journal synced");
     return exit_code;

@@ -164,16 +164,26 @@ static uint64_t pct(const veer_hist *h, double p)
 
 /* ---- closed loop ------------------------------------------------------------------------------ */
 
-static void closed_loop(void *ctx, const target *t, veer_hist *h)
+/* `server`, when not NULL, also records the time veerd says it spent (the reply's server_us,
+ * from dequeue to send): the round trip less that is transport and wake-ups. */
+static void closed_loop(void *ctx, const target *t, veer_hist *h, veer_hist *server)
 {
     void *s = dealer(ctx, t->act);
     uint8_t buf[4096];
     for (int i = 0; i < CLOSED_N + 500; i++) {
         uint64_t t0 = veer__now_ns();
         zmq_send(s, t->req, t->req_len, 0);
-        zmq_recv(s, buf, sizeof buf, 0);
-        if (i >= 500) /* the first ones warm up connections and caches */
-            veer_hist_record(h, veer__now_ns() - t0);
+        int n = zmq_recv(s, buf, sizeof buf, 0);
+        if (i < 500) /* the first ones warm up connections and caches */
+            continue;
+        veer_hist_record(h, veer__now_ns() - t0);
+        if (server != NULL && n > 0 && (size_t)n <= sizeof buf) {
+            Veer__Wire__Reply *r = veer__wire__reply__unpack(NULL, (size_t)n, buf);
+            if (r != NULL && r->body_case == VEER__WIRE__REPLY__BODY_ACT)
+                veer_hist_record(server, (uint64_t)r->act->server_us * 1000u + 1);
+            if (r != NULL)
+                veer__wire__reply__free_unpacked(r, NULL);
+        }
     }
     zmq_close(s);
 }
@@ -499,14 +509,16 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
     printf("  request %zu bytes, reply %d bytes; OpenBLAS kernel %s\n", tv.req_len, reply_len, veer_blas_kernel());
 
     /* 3. Closed loops. */
-    veer_hist *h_echo, *h_veerd;
+    veer_hist *h_echo, *h_veerd, *h_server;
     veer_hist_create(&h_echo);
     veer_hist_create(&h_veerd);
-    closed_loop(ctx, &te, h_echo);
-    closed_loop(ctx, &tv, h_veerd);
+    veer_hist_create(&h_server);
+    closed_loop(ctx, &te, h_echo, NULL);
+    closed_loop(ctx, &tv, h_veerd, h_server);
     print_summary("in-process inference (veer_act)", inference);
     print_summary("closed loop, bare ZeroMQ echo", h_echo);
     print_summary("closed loop, veerd", h_veerd);
+    print_summary("  of which inside veerd (server_us)", h_server); /* whole microseconds */
 
     /* 4. Paced. */
     paced_result pe, pv;
@@ -552,6 +564,7 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
     zmq_ctx_term(ctx);
     veer_hist_destroy(h_echo);
     veer_hist_destroy(h_veerd);
+    veer_hist_destroy(h_server);
     veer_hist_destroy(inference);
     veer_hist_destroy(pe.latency);
     veer_hist_destroy(pe.lateness);

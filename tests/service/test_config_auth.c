@@ -92,6 +92,26 @@ static void test_bad_values(void **state)
     const char *m[] = {"veerd", "--bundle", "x"};
     expect_bad("--default-deadline-us", 3, m);
     unsetenv("VEER_DEFAULT_DEADLINE_US");
+    const char *n[] = {"veerd", "--bundle", "x", "--act-priority", "100"}; /* SCHED_FIFO tops at 99 */
+    expect_bad("--act-priority", 5, n);
+    const char *o[] = {"veerd", "--bundle", "x", "--cpu-latency-us", "fast"};
+    expect_bad("--cpu-latency-us", 5, o);
+    const char *p[] = {"veerd", "--bundle", "x", "--cpu-latency-us=-5"};
+    expect_bad("--cpu-latency-us", 4, p);
+    const char *q[] = {"veerd", "--bundle", "x", "--cpu-latency-us", "100001"};
+    expect_bad("--cpu-latency-us", 5, q);
+    /* Given and in range: taken as it is, 0 included (the strictest request). */
+    veer__config cfg;
+    veer_error err;
+    const char *r[] = {"veerd", "--bundle", "x", "--cpu-latency-us", "0", "--act-priority", "30"};
+    assert_int_equal(parse(&cfg, &err, 7, r), 0);
+    assert_int_equal(cfg.cpu_latency_on, 1);
+    assert_int_equal(cfg.cpu_latency_us, 0);
+    assert_int_equal(cfg.act_priority, 30);
+    const char *s2[] = {"veerd", "--bundle", "x"};
+    assert_int_equal(parse(&cfg, &err, 3, s2), 0);
+    assert_int_equal(cfg.cpu_latency_on, 0);
+    assert_int_equal(cfg.act_priority, 0);
 }
 
 static void test_local_endpoints(void **state)

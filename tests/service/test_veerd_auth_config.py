@@ -5,6 +5,8 @@ public keys: a supervisor with a listed key can switch; one with an unlisted key
 CURVE at all gets no connection, and nothing changes. Without keys, veerd refuses a non-loopback
 admin address. Bad configuration exits 2 with a message naming the flag."""
 import os
+import shutil
+import struct
 import subprocess
 
 import numpy as np
@@ -173,3 +175,74 @@ def test_flag_overrides_environment(continuous_bundle, tmp_path):
         c.close()
         os.kill(p.pid, 15)
         assert p.wait(20) == 0
+
+
+# ---- real-time tuning (--act-priority, --cpu-latency-us) ---------------------------------------
+
+def _fifo_allowed():
+    return shutil.which("chrt") is not None and subprocess.run(
+        ["chrt", "-f", "1", "true"], capture_output=True).returncode == 0
+
+
+def _thread_scheduling(pid):
+    """{thread id: (name, policy, rt priority)} from /proc/PID/task/*/stat (proc(5): fields 40
+    rt_priority and 41 policy; the name is field 2, in parentheses)."""
+    out = {}
+    for tid in os.listdir(f"/proc/{pid}/task"):
+        with open(f"/proc/{pid}/task/{tid}/stat") as f:
+            text = f.read()
+        name = text[text.index("(") + 1:text.rindex(")")]
+        rest = text[text.rindex(")") + 2:].split()  # fields 3, 4, ...
+        out[int(tid)] = (name, int(rest[41 - 3]), int(rest[40 - 3]))
+    return out
+
+
+def _cpu_latency_now():
+    with open("/dev/cpu_dma_latency", "rb") as f:
+        return struct.unpack("<i", f.read(4))[0]
+
+
+SCHED_OTHER, SCHED_FIFO = 0, 1  # sched.h
+
+
+@pytest.mark.skipif(not _fifo_allowed(), reason="this machine does not allow SCHED_FIFO (no CAP_SYS_NICE)")
+def test_act_priority_puts_act_and_zmq_threads_at_fifo(continuous_bundle, start):
+    d, c = start(continuous_bundle, extra=["--act-priority", "15"])
+    threads = _thread_scheduling(d.proc.pid)
+    fifo = sorted(name for name, pol, prio in threads.values() if pol == SCHED_FIFO and prio == 15)
+    other = [name for name, pol, _ in threads.values() if pol == SCHED_OTHER]
+    # The act thread (named like the process) and libzmq's I/O and reaper threads; the main
+    # loop and libuv's workers stay at ordinary priority, so admin work cannot starve acts.
+    assert fifo == ["ZMQbg/IO/0", "ZMQbg/Reaper", "veerd"], threads
+    assert threads[d.proc.pid][1] == SCHED_OTHER and "veerd" in other
+    s = continuous_bundle.states
+    c.put_goals("park", s[:1], [1.0])
+    assert c.switch("line-1", "park").channel.epoch == 1
+    r = c.do_act("line-1", s[5], seq=1, deadline_us=500000).act
+    assert r.task == "park" and r.flags & harness.ACT_FALLBACK == 0
+
+
+@pytest.mark.skipif(shutil.which("setpriv") is None or shutil.which("prlimit") is None,
+                    reason="needs setpriv and prlimit (util-linux) to take the capability away")
+def test_act_priority_refused_without_permission(continuous_bundle, tmp_path):
+    """Without CAP_SYS_NICE and with RLIMIT_RTPRIO 0 the kernel refuses SCHED_FIFO: veerd says
+    what to grant and exits 2 before it creates its state directory."""
+    r = subprocess.run(["prlimit", "--rtprio=0", "setpriv", "--bounding-set", "-sys_nice", "--inh-caps",
+                        "-sys_nice", VEERD, "--bundle", str(continuous_bundle.path), "--state-dir",
+                        str(tmp_path / "s"), "--act-priority", "40"],
+                       capture_output=True, text=True, timeout=20)
+    assert r.returncode == 2, r.stderr
+    assert "--act-priority 40" in r.stderr and "LimitRTPRIO=40" in r.stderr
+    assert not (tmp_path / "s").exists()
+
+
+@pytest.mark.skipif(not os.access("/dev/cpu_dma_latency", os.R_OK | os.W_OK),
+                    reason="/dev/cpu_dma_latency is not writable here")
+def test_cpu_latency_request_held_while_running(continuous_bundle, start):
+    """The kernel reports the strictest request in force (Linux pm_qos_interface.rst): while
+    veerd runs it is at most the 37 us asked for; once veerd stops, that request is gone."""
+    d, c = start(continuous_bundle, extra=["--cpu-latency-us", "37"])
+    assert "holding a CPU wake-up latency request of 37 us" in d.log()
+    assert _cpu_latency_now() <= 37
+    assert d.stop() == 0
+    assert _cpu_latency_now() != 37

@@ -1,0 +1,69 @@
+/* Real-time tuning (see rt.h). */
+#include "service/rt.h"
+
+#include <errno.h>
+#include <fcntl.h>
+#include <pthread.h>
+#include <sched.h>
+#include <string.h>
+#include <unistd.h>
+#include <zmq.h>
+
+#include "base/base.h"
+
+int veer__rt_check_fifo(uint32_t priority, const char *flag, veer_error *err)
+{
+    int policy;
+    struct sched_param was, want = {.sched_priority = (int)priority};
+    int rc = pthread_getschedparam(pthread_self(), &policy, &was);
+    if (rc == 0)
+        rc = pthread_setschedparam(pthread_self(), SCHED_FIFO, &want);
+    if (rc != 0)
+        return veer__error_set(err, VEER_ECONFIG, flag,
+                               "%s %u: the kernel refuses SCHED_FIFO priority %u (%s); run veerd with "
+                               "CAP_SYS_NICE or an RLIMIT_RTPRIO of at least %u (systemd: "
+                               "LimitRTPRIO=%u), or leave %s at 0",
+                               flag, priority, priority, strerror(rc), priority, priority, flag);
+    pthread_setschedparam(pthread_self(), policy, &was);
+    return 0;
+}
+
+int veer__rt_set_fifo(uint32_t priority, veer_error *err)
+{
+    struct sched_param p = {.sched_priority = (int)priority};
+    int rc = pthread_setschedparam(pthread_self(), SCHED_FIFO, &p);
+    if (rc != 0)
+        return veer__error_set(err, VEER_ECONFIG, "act_priority", "SCHED_FIFO priority %u: %s", priority,
+                               strerror(rc));
+    return 0;
+}
+
+int veer__rt_zmq_fifo(void *zctx, uint32_t priority, veer_error *err)
+{
+    if (zmq_ctx_set(zctx, ZMQ_THREAD_SCHED_POLICY, SCHED_FIFO) != 0 ||
+        zmq_ctx_set(zctx, ZMQ_THREAD_PRIORITY, (int)priority) != 0)
+        return veer__error_set(err, VEER_ECONFIG, "act_priority",
+                               "libzmq does not take thread priorities: %s", zmq_strerror(errno));
+    return 0;
+}
+
+int veer__rt_hold_cpu_latency(uint32_t us, const char *flag, int *fd_out, veer_error *err)
+{
+    /* The interface takes a binary 32-bit value and holds it while the file stays open
+     * (Linux Documentation/power/pm_qos_interface.rst). */
+    int fd = open("/dev/cpu_dma_latency", O_WRONLY | O_CLOEXEC);
+    if (fd < 0)
+        return veer__error_set(err, VEER_ECONFIG, flag,
+                               "%s %u: cannot open /dev/cpu_dma_latency (%s); it needs root or write "
+                               "access to that device, or leave %s unset",
+                               flag, us, strerror(errno), flag);
+    int32_t v = (int32_t)us;
+    if (write(fd, &v, sizeof v) != (ssize_t)sizeof v) {
+        int e = errno;
+        close(fd);
+        return veer__error_set(err, VEER_ECONFIG, flag, "%s %u: /dev/cpu_dma_latency refused the value (%s)",
+                               flag, us, strerror(e));
+    }
+    *fd_out = fd;
+    return 0;
+}
