@@ -4,7 +4,9 @@
  * The echo and veerd each run in their own process. Per bundle and transport (tcp on
  * 127.0.0.1, ipc):
  *   1. in-process inference: veer_act on this thread (p50, p99, p99.9);
- *   2. closed loop: one DEALER, request -> reply, against the echo and against veerd;
+ *   2. closed loop: one DEALER, request -> reply, against the echo and against veerd (with the
+ *      time veerd reports for itself), and, as a diagnostic, against the echo kept busy for
+ *      the inference p50 before each reply;
  *   3. paced: 4 controllers at 1 kHz, deadline 1 ms, against the echo and against veerd.
  *      Latency counts from the scheduled send time, not the actual one, so a late loop cannot
  *      hide a slow reply (coordinated omission); a reply later than 1 ms after its schedule, or
@@ -70,6 +72,7 @@ typedef struct echo {
     void *ctx;
     char endpoint[256];
     size_t reply_len;
+    uint64_t gap_ns; /* busy time before each reply, standing in for inference (0: none) */
 } echo;
 
 /* The echo runs in its own process, like veerd, so the floor pays the same cross-process
@@ -96,6 +99,8 @@ static void *echo_main(void *arg)
         if (zmq_msg_recv(&id, s, 0) < 0)
             continue;
         zmq_msg_recv(&body, s, 0);
+        for (uint64_t until = veer__now_ns() + e->gap_ns; veer__now_ns() < until;)
+            ;
         /* The reply is as long as veerd's and starts with the request's first bytes, which
          * hold its protocol and id fields (wire.h: the same leading fields as a Reply), so the
          * sender can match replies to requests exactly as it does with veerd. */
@@ -425,18 +430,20 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
     char dir[] = "/tmp/veer-bench-XXXXXX";
     if (mkdtemp(dir) == NULL)
         return 1;
-    char act[256], admin[256], events[256], echo_ep[256];
+    char act[256], admin[256], events[256], echo_ep[256], gap_ep[256];
     if (strcmp(transport, "tcp") == 0) {
         int base = 20000 + (int)(getpid() % 20000);
         snprintf(act, sizeof act, "tcp://127.0.0.1:%d", base);
         snprintf(admin, sizeof admin, "tcp://127.0.0.1:%d", base + 1);
         snprintf(events, sizeof events, "tcp://127.0.0.1:%d", base + 2);
         snprintf(echo_ep, sizeof echo_ep, "tcp://127.0.0.1:%d", base + 3);
+        snprintf(gap_ep, sizeof gap_ep, "tcp://127.0.0.1:%d", base + 4);
     } else {
         snprintf(act, sizeof act, "ipc://%s/act", dir);
         snprintf(admin, sizeof admin, "ipc://%s/admin", dir);
         snprintf(events, sizeof events, "ipc://%s/events", dir);
         snprintf(echo_ep, sizeof echo_ep, "ipc://%s/echo", dir);
+        snprintf(gap_ep, sizeof gap_ep, "ipc://%s/echo-gap", dir);
     }
     pid_t pid = start_veerd(veerd, bundle_path, dir, act, admin, events);
     void *ctx = zmq_ctx_new();
@@ -504,21 +511,40 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
         zmq_ctx_term(e.ctx);
         _exit(0);
     }
-    target te = tv;
+    /* A diagnostic, not a floor of the targets: the echo again, busy for the inference p50
+     * before each reply. The sockets' threads on both sides go idle during that gap and must
+     * be woken after it, which a plain echo never pays; this shows how much of veerd's round
+     * trip above "echo + inference" is that structural cost and how much is veerd's own. */
+    echo eg = e;
+    eg.gap_ns = pct(inference, 50);
+    snprintf(eg.endpoint, sizeof eg.endpoint, "%s", gap_ep);
+    pid_t gap_pid = fork();
+    if (gap_pid == 0) {
+        signal(SIGTERM, on_echo_term);
+        eg.ctx = zmq_ctx_new();
+        echo_main(&eg);
+        zmq_ctx_term(eg.ctx);
+        _exit(0);
+    }
+    target te = tv, tg = tv;
     te.act = echo_ep;
+    tg.act = gap_ep;
     printf("  request %zu bytes, reply %d bytes; OpenBLAS kernel %s\n", tv.req_len, reply_len, veer_blas_kernel());
 
     /* 3. Closed loops. */
-    veer_hist *h_echo, *h_veerd, *h_server;
+    veer_hist *h_echo, *h_veerd, *h_server, *h_gap;
     veer_hist_create(&h_echo);
     veer_hist_create(&h_veerd);
     veer_hist_create(&h_server);
+    veer_hist_create(&h_gap);
     closed_loop(ctx, &te, h_echo, NULL);
     closed_loop(ctx, &tv, h_veerd, h_server);
+    closed_loop(ctx, &tg, h_gap, NULL);
     print_summary("in-process inference (veer_act)", inference);
     print_summary("closed loop, bare ZeroMQ echo", h_echo);
     print_summary("closed loop, veerd", h_veerd);
     print_summary("  of which inside veerd (server_us)", h_server); /* whole microseconds */
+    print_summary("closed loop, echo busy inference p50", h_gap);
 
     /* 4. Paced. */
     paced_result pe, pv;
@@ -557,6 +583,8 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
 
     kill(echo_pid, SIGTERM);
     waitpid(echo_pid, NULL, 0);
+    kill(gap_pid, SIGTERM);
+    waitpid(gap_pid, NULL, 0);
     kill(pid, SIGTERM);
     int status = 0;
     waitpid(pid, &status, 0);
@@ -565,6 +593,7 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
     veer_hist_destroy(h_echo);
     veer_hist_destroy(h_veerd);
     veer_hist_destroy(h_server);
+    veer_hist_destroy(h_gap);
     veer_hist_destroy(inference);
     veer_hist_destroy(pe.latency);
     veer_hist_destroy(pe.lateness);
