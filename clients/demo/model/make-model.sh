@@ -13,6 +13,10 @@
 # starts that would end later); the baselines about 10 minutes more. The shipped model came from
 # this script's commands: 21,000 steps in about 28 minutes, of which the held-out selection kept
 # the 18,000-step chunk.
+# The log's episode ends are time-limit cuts (the generator ends episodes by length), so the
+# trainer is told so (--ends truncated); the shipped model predates that and was trained with
+# the default --ends terminal (clients/demo/README.md compares the two). BATCH overrides the
+# batch of 256.
 set -euo pipefail
 here="$(cd "$(dirname "$0")" && pwd)"
 root="$(cd "$here/../../.." && pwd)"
@@ -23,6 +27,7 @@ steps_per_chunk="${CHUNK_STEPS:-3000}"
 chunks="${CHUNKS:-8}"
 budget="${TRAIN_BUDGET_S:-1770}" # 29.5 minutes of training
 zdim="${Z_DIM:-32}"
+batch="${BATCH:-256}"
 cd "$work"
 # A fresh run: a checkpoint left from an earlier run would be resumed past the first chunks.
 rm -f train.ckpt curve.csv chunk-*.veer select.txt
@@ -45,8 +50,8 @@ for i in $(seq 1 "$chunks"); do
     t0=$(date +%s)
     SOURCE_DATE_EPOCH=1764633600 "$bin/veer" train \
         --states log/states.npy --actions log/actions.npy --next-states log/next_states.npy \
-        --dones log/dones.npy --continuous -12:12,-6:6 --step 0.02 --features "$features" \
-        --preset small --z-dim "$zdim" --hidden 256 --b-hidden 256 --batch 256 --discount 0.98 \
+        --dones log/dones.npy --ends truncated --continuous -12:12,-6:6 --step 0.02 --features "$features" \
+        --preset small --z-dim "$zdim" --hidden 256 --b-hidden 256 --batch "$batch" --discount 0.98 \
         --rng-key 1 --threads 1 --eval-every 500 --checkpoint-every 1000 \
         --fallback 0,0 --model-version "parcel-arm-s$steps" \
         --checkpoint train.ckpt --curve curve.csv --steps "$steps" --out "chunk-$steps.veer" --quiet
