@@ -29,18 +29,23 @@ static void on_signal(int sig)
 /* Every setting that shapes training, in a fixed order (the fingerprint and the provenance). */
 static void describe(const veer_train_config *c, char *out, size_t cap)
 {
+    /* The cosine schedule depends on the length, so a run resumed with another --steps would
+     * not be the same run: the length is part of it. */
+    char schedule[48] = "";
+    if (c->lr_cosine)
+        snprintf(schedule, sizeof schedule, " lr_schedule=cosine:%llu", (unsigned long long)c->steps);
     int n = snprintf(out, cap,
                      "arch=%s z_dim=%u hidden=%u b_hidden=%u layers=%u k=%u heads=%u b_norm=%d "
                      "embed_std=%g batch=%u lr_f=%g lr_b=%g lr_actor=%g discount=%g tau=%g "
                      "ortho=%g mix_ratio=%g noise=%g noise_clip=%g rng_key=%llu holdout=%g "
-                     "ref_count=%u ends=%s actions=",
+                     "ref_count=%u ends=%s%s actions=",
                      c->arch == VEER_TRAIN_TABLE ? "table" : "mlp", c->z_dim, c->hidden,
                      c->b_hidden, c->layers, c->bilinear_k, c->heads, c->b_norm,
                      (double)c->embed_std, c->batch, (double)c->lr_f, (double)c->lr_b,
                      (double)c->lr_actor, (double)c->discount, (double)c->tau, (double)c->ortho,
                      (double)c->mix_ratio, (double)c->noise, (double)c->noise_clip,
                      (unsigned long long)c->rng_key, (double)c->holdout, c->ref_count,
-                     c->ends_truncated ? "truncated" : "terminal");
+                     c->ends_truncated ? "truncated" : "terminal", schedule);
     if (c->action_count) {
         n += snprintf(out + n, cap - (size_t)n, "discrete:%u", c->action_count);
     } else {

@@ -504,6 +504,16 @@ int veer__trainer_step(veer__trainer *t, veer__train_losses *L)
         (rc = veer__nn_forward(t->b, n, t->sn, NULL, NULL, &B)) != 0)
         return rc;
 
+    if (c->lr_cosine) {
+        /* Cosine annealing without restarts (Loshchilov & Hutter, "SGDR", ICLR 2017, eq. 5
+         * with eta_min = 0): small late steps let the minibatch noise average out, which is
+         * what the last digits of a tabular fit need. */
+        double f = 0.5 * (1.0 + cos(M_PI * (double)t->step / (double)c->steps));
+        for (uint32_t h = 0; h < t->heads; h++)
+            t->opt_f[h].lr = (float)(c->lr_f * f);
+        t->opt_b.lr = (float)(c->lr_b * f);
+        t->opt_actor.lr = (float)(c->lr_actor * f);
+    }
     veer__nn_zero_grad(t->b);
     memset(t->db, 0, n * d * sizeof(float));
     double fb = 0, off = 0, dg = 0;

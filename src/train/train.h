@@ -63,6 +63,7 @@ typedef struct veer_train_config {
     uint32_t batch;
     uint64_t steps;
     float lr_f, lr_b, lr_actor, discount, tau, ortho, mix_ratio, noise, noise_clip;
+    int lr_cosine;    /* 1: every learning rate decays to 0 along a half cosine over `steps` */
     uint64_t rng_key; /* start value of the random streams */
     int threads;
     float holdout;                /* fraction of transitions held out for the Bellman residual */

@@ -351,6 +351,60 @@ static void test_same_flags_same_bundle_and_resume(void **state)
     free(cv);
 }
 
+/* --lr-schedule cosine: before step k (from 0) every rate is base · ½(1 + cos(π k / steps)), the
+ * annealing of Loshchilov & Hutter, "SGDR", ICLR 2017, eq. 5 with eta_min = 0 (computed here
+ * from the formula, not from the trainer); constant leaves the rates alone. */
+static void test_cosine_schedule(void **state)
+{
+    (void)state;
+    veer_train_config c;
+    table_config(&c, "cos.veer");
+    c.lr_cosine = 1;
+    c.steps = 30;
+    veer__tlog_spec spec = {.states_path = c.states_path, .actions_path = c.actions_path,
+                            .next_states_path = c.next_states_path, .action_count = c.action_count,
+                            .action_dim = 1, .nstate_counts = c.nstate_counts,
+                            .state_counts = c.state_counts};
+    veer__tlog log;
+    veer_error err;
+    assert_int_equal(veer__tlog_load(&spec, &log, &err), 0);
+    veer__trainer *t;
+    if (veer__trainer_create(&c, &log, &t, &err) != 0)
+        fail_msg("create: %s", err.message);
+    const double pi = 3.14159265358979323846;
+    for (int k = 0; k < 30; k++) {
+        assert_int_equal(veer__trainer_step(t, NULL), 0);
+        double want = 0.5 * (1.0 + cos(pi * k / 30.0));
+        close_to("lr_f", (size_t)k, t->opt_f[0].lr, c.lr_f * want, 1e-6);
+        close_to("lr_b", (size_t)k, t->opt_b.lr, c.lr_b * want, 1e-6);
+    }
+    assert_true(t->opt_f[0].lr < 0.003f * c.lr_f); /* the last step: ½(1 + cos(29π/30)) = 0.0027 */
+    veer__trainer_destroy(t);
+    c.lr_cosine = 0;
+    assert_int_equal(veer__trainer_create(&c, &log, &t, &err), 0);
+    for (int k = 0; k < 5; k++)
+        assert_int_equal(veer__trainer_step(t, NULL), 0);
+    assert_true(t->opt_f[0].lr == c.lr_f && t->opt_b.lr == c.lr_b);
+    veer__trainer_destroy(t);
+    veer__tlog_free(&log);
+
+    /* The schedule depends on the length, so a cosine checkpoint does not resume under
+     * another --steps. */
+    char ck[512];
+    path_in(ck, sizeof ck, "cos.ckpt");
+    table_config(&c, "cos.veer");
+    c.lr_cosine = 1;
+    c.checkpoint_path = ck;
+    c.steps = 10;
+    c.checkpoint_every = 5;
+    c.progress = 0;
+    if (veer__train_run(&c, &err) != 0)
+        fail_msg("run: %s", err.message);
+    c.steps = 20;
+    assert_int_equal(veer__train_run(&c, &err), VEER_ECONFIG);
+    assert_string_equal(err.field, "--checkpoint");
+}
+
 static int setup(void **state)
 {
     (void)state;
@@ -376,6 +430,7 @@ int main(void)
         cmocka_unit_test(test_roundtrip_continuous),
         cmocka_unit_test(test_roundtrip_table),
         cmocka_unit_test(test_same_flags_same_bundle_and_resume),
+        cmocka_unit_test(test_cosine_schedule),
     };
     return cmocka_run_group_tests(tests, setup, teardown);
 }

@@ -34,6 +34,7 @@ static void usage(FILE *to)
         "          --z-dim N  --hidden N  --b-hidden N  --layers N  --k N  --heads 1|2\n"
         "          --b-features I,...  --no-b-norm  --embed-std X\n"
         "training: --steps N  --batch N  --lr X (all three)  --lr-f X  --lr-b X  --lr-actor X\n"
+        "          --lr-schedule constant|cosine   (cosine: every rate decays to 0 by --steps)\n"
         "          --discount X  --tau X  --ortho X  --mix-ratio X  --noise X  --noise-clip X\n"
         "          --rng-key N  --threads N  --holdout FRACTION  --ref-count N\n"
         "output:   --eval-every N  --checkpoint FILE  --checkpoint-every N  --curve FILE\n"
@@ -206,6 +207,13 @@ static int run(int argc, char **argv)
                 c.ends_truncated = 1;
             else
                 rc = bad_value(f, v, "terminal or truncated");
+        } else if (IS("--lr-schedule")) {
+            if (strcmp(v, "constant") == 0)
+                c.lr_cosine = 0;
+            else if (strcmp(v, "cosine") == 0)
+                c.lr_cosine = 1;
+            else
+                rc = bad_value(f, v, "constant or cosine");
         } else if (IS("--arch")) {
             if (strcmp(v, "mlp") == 0)
                 c.arch = VEER_TRAIN_MLP;
