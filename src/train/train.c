@@ -70,7 +70,10 @@ int veer__train_preset(veer_train_config *c, const char *name)
         c->arch = VEER_TRAIN_TABLE;
         c->z_dim = 32;
         c->heads = 1;
-        c->batch = 512;
+        /* A large batch: the fit of a table is limited by minibatch noise, not by passes. On
+         * the warehouse floor, 2,000 steps at batch 512 score 0.79 on goals, at 2,048 0.95 and
+         * at 4,096 0.96, each step costing about proportionally more (our measurements). */
+        c->batch = 2048;
         c->steps = 2000;
         c->lr_f = c->lr_b = 1e-3f;
         c->discount = 0.95f;
@@ -506,8 +509,10 @@ int veer__trainer_step(veer__trainer *t, veer__train_losses *L)
 
     if (c->lr_cosine) {
         /* Cosine annealing without restarts (Loshchilov & Hutter, "SGDR", ICLR 2017, eq. 5
-         * with eta_min = 0): small late steps let the minibatch noise average out, which is
-         * what the last digits of a tabular fit need. */
+         * with eta_min = 0): small late steps let minibatch noise average out. Not a default:
+         * on the slippery warehouse floor it scored 0.72 against 0.87 for a constant rate
+         * (batch 2,048, 2,000 steps; our measurement), the temporal-difference targets still
+         * moving when the rate has nearly gone. */
         double f = 0.5 * (1.0 + cos(M_PI * (double)t->step / (double)c->steps));
         for (uint32_t h = 0; h < t->heads; h++)
             t->opt_f[h].lr = (float)(c->lr_f * f);
