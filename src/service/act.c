@@ -19,6 +19,8 @@
 #include "base/base.h"
 #include "service/arena.h"
 #include "service/auth.h"
+#include "service/log.h"
+#include "service/rt.h"
 #include "service/state_ring.h"
 #include "service/wire.h"
 #include "veer/drift.h"
@@ -324,6 +326,13 @@ static int act_wait(veer__act *a)
 static void *act_main(void *arg)
 {
     veer__act *a = arg;
+    if (a->cfg.pin) {
+        /* The CPU was checked at start, so this does not fail in practice; if it did, serving
+         * unpinned beats not serving. */
+        veer_error err;
+        if (veer__rt_pin_self(a->cfg.cpu, &err) != 0)
+            veer__log_warn("%s", err.message);
+    }
     for (;;) {
         if (act_wait(a) == 0) {
             serve_one(a);

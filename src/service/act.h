@@ -41,6 +41,8 @@ typedef struct veer__act_config {
     uint32_t deadline_percentile;     /* 50..100; 0 means 99 */
     uint32_t spin_us;                 /* poll this long without sleeping before blocking */
     uint32_t priority;                /* SCHED_FIFO priority of the thread; 0: ordinary */
+    int pin;                          /* 1: the thread pins itself to `cpu` before serving */
+    uint32_t cpu;
     uint32_t max_message_bytes;
     const uint8_t *server_secret_key; /* 32 bytes: require CURVE; NULL: no authentication */
     int monitors_off; /* 1: no drift monitor, no stage latency recorders (for the overhead

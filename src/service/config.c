@@ -63,6 +63,10 @@ static const opt_desc OPTIONS[] = {
      "on the machine cannot delay an act (0: ordinary scheduling). Needs CAP_SYS_NICE or an\n"
      "RLIMIT_RTPRIO at least this high (systemd: LimitRTPRIO=); veerd refuses to start without.\n"
      "Keep it below the priorities of the machine's own control loops."},
+    {"--act-cpu", "VEER_ACT_CPU", OPT_STR, OFF(act_cpu), NULL, 0, 0, 0,
+     "Pin the act thread and libzmq's I/O threads to this CPU (a number from 0), so a request\n"
+     "and its reply are handed between threads on one core (empty: not pinned). Choose a core\n"
+     "the machine's other real-time work does not use."},
     {"--cpu-latency-us", "VEER_CPU_LATENCY_US", OPT_STR, OFF(cpu_latency), NULL, 0, 0, 0,
      "Hold a CPU wake-up latency request of this many microseconds (0 to 100000) through\n"
      "/dev/cpu_dma_latency while veerd runs, so idle CPUs do not sleep too deeply to answer in\n"
@@ -188,6 +192,18 @@ static int check_whole(veer__config *cfg, const int given[OPTION_COUNT], veer_er
                                "--allowed-keys needs --server-key: the server's secret key file");
     if (cfg->act_auth && cfg->server_key_path[0] == '\0')
         return veer__error_set(err, VEER_ECONFIG, "--act-auth", "--act-auth needs --server-key and --allowed-keys");
+    cfg->act_cpu_on = cfg->act_cpu[0] != '\0';
+    if (cfg->act_cpu_on) {
+        char *end = NULL;
+        errno = 0;
+        unsigned long long v = strtoull(cfg->act_cpu, &end, 10);
+        if (errno != 0 || end == cfg->act_cpu || *end != '\0' || cfg->act_cpu[0] == '-' || v > 1023)
+            return veer__error_set(err, VEER_ECONFIG, "--act-cpu",
+                                   "--act-cpu: expected a CPU number from 0 to 1023, or empty for none; "
+                                   "got '%s'",
+                                   cfg->act_cpu);
+        cfg->act_cpu_index = (uint32_t)v;
+    }
     cfg->cpu_latency_on = cfg->cpu_latency[0] != '\0';
     if (cfg->cpu_latency_on) {
         char *end = NULL;

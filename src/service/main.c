@@ -179,6 +179,8 @@ int main(int argc, char **argv)
     int cpu_latency_fd = -1;
     if (d.cfg.act_priority != 0 && veer__rt_check_fifo(d.cfg.act_priority, "--act-priority", &err) < 0)
         return config_exit(&err);
+    if (d.cfg.act_cpu_on && veer__rt_check_cpu(d.cfg.act_cpu_index, "--act-cpu", &err) < 0)
+        return config_exit(&err);
     if (d.cfg.cpu_latency_on) {
         if (veer__rt_hold_cpu_latency(d.cfg.cpu_latency_us, "--cpu-latency-us", &cpu_latency_fd, &err) < 0)
             return config_exit(&err);
@@ -234,7 +236,8 @@ int main(int argc, char **argv)
     }
     /* Before the first socket: libzmq starts its I/O threads with it, at the priority set
      * here (the permission was proven at start, rt.h). */
-    if (d.cfg.act_priority != 0 && veer__rt_zmq_fifo(zctx, d.cfg.act_priority, &err) < 0) {
+    if ((d.cfg.act_priority != 0 && veer__rt_zmq_fifo(zctx, d.cfg.act_priority, &err) < 0) ||
+        (d.cfg.act_cpu_on && veer__rt_zmq_cpu(zctx, d.cfg.act_cpu_index, &err) < 0)) {
         veer__log_error("%s", err.message);
         d.loop = uv_default_loop();
         goto fail_zmq;
@@ -268,6 +271,8 @@ int main(int argc, char **argv)
                              .deadline_percentile = d.cfg.deadline_percentile,
                              .spin_us = d.cfg.act_spin_us,
                              .priority = d.cfg.act_priority,
+                             .pin = d.cfg.act_cpu_on,
+                             .cpu = d.cfg.act_cpu_index,
                              .max_message_bytes = d.cfg.act_max_message_bytes,
                              .server_secret_key = auth && d.cfg.act_auth ? secret : NULL,
                              .monitors_off = !d.cfg.monitors,

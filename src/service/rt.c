@@ -1,4 +1,6 @@
-/* Real-time tuning (see rt.h). */
+/* Real-time tuning (see rt.h). _GNU_SOURCE for the affinity calls (sched_getaffinity,
+ * pthread_setaffinity_np), which POSIX does not have. */
+#define _GNU_SOURCE
 #include "service/rt.h"
 
 #include <errno.h>
@@ -44,6 +46,41 @@ int veer__rt_zmq_fifo(void *zctx, uint32_t priority, veer_error *err)
         zmq_ctx_set(zctx, ZMQ_THREAD_PRIORITY, (int)priority) != 0)
         return veer__error_set(err, VEER_ECONFIG, "act_priority",
                                "libzmq does not take thread priorities: %s", zmq_strerror(errno));
+    return 0;
+}
+
+int veer__rt_check_cpu(uint32_t cpu, const char *flag, veer_error *err)
+{
+    cpu_set_t allowed;
+    CPU_ZERO(&allowed);
+    if (sched_getaffinity(0, sizeof allowed, &allowed) != 0)
+        return veer__error_set(err, VEER_ECONFIG, flag, "%s: cannot read this process's CPUs: %s", flag,
+                               strerror(errno));
+    if (cpu >= CPU_SETSIZE || !CPU_ISSET(cpu, &allowed))
+        return veer__error_set(err, VEER_ECONFIG, flag,
+                               "%s %u: veerd may not run on CPU %u (it may use %d CPUs; see taskset -p "
+                               "or the unit's CPUAffinity=)",
+                               flag, cpu, cpu, CPU_COUNT(&allowed));
+    return 0;
+}
+
+int veer__rt_pin_self(uint32_t cpu, veer_error *err)
+{
+    cpu_set_t set;
+    CPU_ZERO(&set);
+    CPU_SET(cpu, &set);
+    int rc = pthread_setaffinity_np(pthread_self(), sizeof set, &set);
+    if (rc != 0)
+        return veer__error_set(err, VEER_ECONFIG, "act_cpu", "cannot pin the thread to CPU %u: %s", cpu,
+                               strerror(rc));
+    return 0;
+}
+
+int veer__rt_zmq_cpu(void *zctx, uint32_t cpu, veer_error *err)
+{
+    if (zmq_ctx_set(zctx, ZMQ_THREAD_AFFINITY_CPU_ADD, (int)cpu) != 0)
+        return veer__error_set(err, VEER_ECONFIG, "act_cpu", "libzmq does not take a thread affinity: %s",
+                               zmq_strerror(errno));
     return 0;
 }
 

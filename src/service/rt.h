@@ -27,6 +27,17 @@ int veer__rt_set_fifo(uint32_t priority, veer_error *err);
  * the context's first socket, after veer__rt_check_fifo succeeded. */
 int veer__rt_zmq_fifo(void *zctx, uint32_t priority, veer_error *err);
 
+/* Whether `cpu` is one this process may run on (its affinity mask); VEER_ECONFIG naming `flag`
+ * otherwise. */
+int veer__rt_check_cpu(uint32_t cpu, const char *flag, veer_error *err);
+
+/* Pins the calling thread to `cpu`. */
+int veer__rt_pin_self(uint32_t cpu, veer_error *err);
+
+/* Makes the I/O threads of the ZeroMQ context `zctx` start pinned to `cpu`. Call before the
+ * context's first socket. */
+int veer__rt_zmq_cpu(void *zctx, uint32_t cpu, veer_error *err);
+
 /* Asks the kernel to keep CPU wake-up latency at or below `us` microseconds for as long as the
  * returned descriptor stays open (the request ends when it is closed, or the process exits).
  * *fd_out receives the descriptor. VEER_ECONFIG naming `flag` when the interface is missing or

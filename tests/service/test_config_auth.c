@@ -100,6 +100,12 @@ static void test_bad_values(void **state)
     expect_bad("--cpu-latency-us", 4, p);
     const char *q[] = {"veerd", "--bundle", "x", "--cpu-latency-us", "100001"};
     expect_bad("--cpu-latency-us", 5, q);
+    const char *t1[] = {"veerd", "--bundle", "x", "--act-cpu", "first"};
+    expect_bad("--act-cpu", 5, t1);
+    const char *t2[] = {"veerd", "--bundle", "x", "--act-cpu", "1024"};
+    expect_bad("--act-cpu", 5, t2);
+    const char *t3[] = {"veerd", "--bundle", "x", "--act-cpu=-1"};
+    expect_bad("--act-cpu", 4, t3);
     /* Given and in range: taken as it is, 0 included (the strictest request). */
     veer__config cfg;
     veer_error err;
@@ -108,6 +114,11 @@ static void test_bad_values(void **state)
     assert_int_equal(cfg.cpu_latency_on, 1);
     assert_int_equal(cfg.cpu_latency_us, 0);
     assert_int_equal(cfg.act_priority, 30);
+    assert_int_equal(cfg.act_cpu_on, 0);
+    const char *u[] = {"veerd", "--bundle", "x", "--act-cpu", "1"};
+    assert_int_equal(parse(&cfg, &err, 5, u), 0);
+    assert_int_equal(cfg.act_cpu_on, 1);
+    assert_int_equal(cfg.act_cpu_index, 1);
     const char *s2[] = {"veerd", "--bundle", "x"};
     assert_int_equal(parse(&cfg, &err, 3, s2), 0);
     assert_int_equal(cfg.cpu_latency_on, 0);

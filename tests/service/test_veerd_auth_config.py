@@ -246,3 +246,36 @@ def test_cpu_latency_request_held_while_running(continuous_bundle, start):
     assert _cpu_latency_now() <= 37
     assert d.stop() == 0
     assert _cpu_latency_now() != 37
+
+
+def _cpus_allowed(pid, tid):
+    with open(f"/proc/{pid}/task/{tid}/status") as f:
+        for line in f:
+            if line.startswith("Cpus_allowed_list:"):
+                return line.split(":", 1)[1].strip()
+    return None
+
+
+@pytest.mark.skipif(len(os.sched_getaffinity(0)) < 2, reason="needs two CPUs to tell pinned from not")
+def test_act_cpu_pins_the_act_and_zmq_io_threads(continuous_bundle, start):
+    cpu = max(os.sched_getaffinity(0))
+    d, c = start(continuous_bundle, extra=["--act-cpu", str(cpu)])
+    s = continuous_bundle.states
+    c.put_goals("park", s[:1], [1.0])
+    c.switch("line-1", "park")
+    assert c.do_act("line-1", s[3], seq=1, deadline_us=500000).act.task == "park"
+    pinned = {}
+    for tid, (name, _, _) in _thread_scheduling(d.proc.pid).items():
+        pinned.setdefault(name, []).append(_cpus_allowed(d.proc.pid, tid))
+    # The act thread is the one "veerd" thread besides the main one that is pinned.
+    assert str(cpu) in pinned["veerd"] and pinned["ZMQbg/IO/0"] == [str(cpu)], pinned
+    assert _cpus_allowed(d.proc.pid, d.proc.pid) != str(cpu)  # the loop thread is not pinned
+
+
+def test_act_cpu_outside_the_allowed_set_is_refused(continuous_bundle, tmp_path):
+    bad = max(os.sched_getaffinity(0)) + 1
+    r = run_veerd(["--bundle", str(continuous_bundle.path), "--state-dir", str(tmp_path / "s"),
+                   "--act-cpu", str(bad)])
+    assert r.returncode == 2, r.stderr
+    assert f"--act-cpu {bad}" in r.stderr and "may not run on CPU" in r.stderr
+    assert not (tmp_path / "s").exists()
