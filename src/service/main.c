@@ -234,15 +234,14 @@ int main(int argc, char **argv)
         veer__log_error("cannot create the ZeroMQ context");
         goto fail_journal;
     }
-    /* Before the first socket: libzmq starts its I/O threads with it, at the priority set
-     * here (the permission was proven at start, rt.h). */
+    d.loop = uv_default_loop();
+    /* Before the first socket: libzmq starts its I/O threads with it, at the priority and on
+     * the CPU set here (both were checked at start, rt.h). */
     if ((d.cfg.act_priority != 0 && veer__rt_zmq_fifo(zctx, d.cfg.act_priority, &err) < 0) ||
         (d.cfg.act_cpu_on && veer__rt_zmq_cpu(zctx, d.cfg.act_cpu_index, &err) < 0)) {
         veer__log_error("%s", err.message);
-        d.loop = uv_default_loop();
         goto fail_zmq;
     }
-    d.loop = uv_default_loop();
     if (auth) {
         if (veer__zap_open(zctx, &keys, &d.zap, &err) < 0) {
             veer__log_error("%s", err.message);
