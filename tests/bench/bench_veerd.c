@@ -116,6 +116,20 @@ static void *echo_main(void *arg)
     return NULL;
 }
 
+/* Starts `e` in a child process with its own ZeroMQ context; SIGTERM stops it. */
+static pid_t spawn_echo(echo *e)
+{
+    pid_t pid = fork();
+    if (pid == 0) {
+        signal(SIGTERM, on_echo_term);
+        e->ctx = zmq_ctx_new();
+        echo_main(e);
+        zmq_ctx_term(e->ctx);
+        _exit(0);
+    }
+    return pid;
+}
+
 /* ---- helpers -------------------------------------------------------------------------------- */
 
 static void *dealer(void *ctx, const char *endpoint)
@@ -510,14 +524,7 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
     echo e = {.reply_len = (size_t)reply_len};
     snprintf(e.endpoint, sizeof e.endpoint, "%s", echo_ep);
     fflush(stdout);
-    pid_t echo_pid = fork();
-    if (echo_pid == 0) {
-        signal(SIGTERM, on_echo_term);
-        e.ctx = zmq_ctx_new();
-        echo_main(&e);
-        zmq_ctx_term(e.ctx);
-        _exit(0);
-    }
+    pid_t echo_pid = spawn_echo(&e);
     /* A diagnostic, not a floor of the targets: the echo again, busy for the inference p50
      * before each reply. The sockets' threads on both sides go idle during that gap and must
      * be woken after it, which a plain echo never pays; this shows how much of veerd's round
@@ -525,14 +532,7 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
     echo eg = e;
     eg.gap_ns = pct(inference, 50);
     snprintf(eg.endpoint, sizeof eg.endpoint, "%s", gap_ep);
-    pid_t gap_pid = fork();
-    if (gap_pid == 0) {
-        signal(SIGTERM, on_echo_term);
-        eg.ctx = zmq_ctx_new();
-        echo_main(&eg);
-        zmq_ctx_term(eg.ctx);
-        _exit(0);
-    }
+    pid_t gap_pid = spawn_echo(&eg);
     target te = tv;
     te.act = echo_ep;
     printf("  request %zu bytes, reply %d bytes; OpenBLAS kernel %s\n", tv.req_len, reply_len, veer_blas_kernel());
