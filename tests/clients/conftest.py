@@ -4,8 +4,8 @@ temporary state directory, stopped by its process id."""
 import os
 import shutil
 import signal
-import socket
 import subprocess
+import sys
 import tempfile
 import time
 
@@ -38,10 +38,9 @@ def bundles():
     shutil.rmtree(d, ignore_errors=True)
 
 
-def free_port():
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
+# Port picking is the service tests' (tests/service/harness.py), shared rather than copied.
+sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "service"))
+from harness import free_port, free_ports  # noqa: E402,F401
 
 
 class Veerd:
@@ -57,7 +56,7 @@ class Veerd:
             self.admin = f"ipc://{self.dir}/admin"
             self.events = f"ipc://{self.dir}/events"
         else:
-            p = [free_port() for _ in range(3)]
+            p = free_ports(3)
             self.act, self.admin = f"tcp://127.0.0.1:{p[0]}", f"tcp://127.0.0.1:{p[1]}"
             self.events = f"tcp://127.0.0.1:{p[2]}"
         self.log = open(os.path.join(self.dir, "veerd.log"), "w+")

@@ -33,15 +33,28 @@ E = {"EFIELD": -20, "ENONFINITE": -16, "EEMPTY": -30, "EDIM": -31, "ENOSIGNAL": 
      "ENAMECONFLICT": -46, "ENOTREADY": -48, "EREFSHAPE": -18, "EPROTOCOL": -62}
 
 
+def free_ports(n: int) -> list:
+    """n distinct free ports: all n sockets are held open while the kernel picks, since ports
+    picked one after another may repeat once each socket is closed (seen in CI: veerd then
+    refused --events equal to --act)."""
+    socks = [socket.socket() for _ in range(n)]
+    try:
+        for s in socks:
+            s.bind(("127.0.0.1", 0))
+        return [s.getsockname()[1] for s in socks]
+    finally:
+        for s in socks:
+            s.close()
+
+
 def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
+    return free_ports(1)[0]
 
 
 def endpoints(kind: str, tmp) -> dict:
     if kind == "tcp":
-        return {n: f"tcp://127.0.0.1:{free_port()}" for n in ("act", "admin", "events")}
+        ports = free_ports(3)
+        return {n: f"tcp://127.0.0.1:{p}" for n, p in zip(("act", "admin", "events"), ports)}
     return {n: f"ipc://{tmp}/{n}.sock" for n in ("act", "admin", "events")}
 
 
