@@ -161,6 +161,25 @@ static int check_endpoint(const char *flag, const char *ep, veer_error *err)
     return 0;
 }
 
+/* An integer option where empty means "off" (the table's integer kind has no "off"): *on is
+ * whether `text` was given, *value its value from 0 to max. */
+static int optional_u32(const char *flag, const char *text, uint32_t max, const char *what, int *on,
+                        uint32_t *value, veer_error *err)
+{
+    *on = text[0] != '\0';
+    if (!*on)
+        return 0;
+    char *end = NULL;
+    errno = 0;
+    unsigned long long v = strtoull(text, &end, 10);
+    if (errno != 0 || end == text || *end != '\0' || text[0] == '-' || v > max)
+        return veer__error_set(err, VEER_ECONFIG, flag,
+                               "%s: expected %s from 0 to %" PRIu32 ", or empty for none; got '%s'", flag, what,
+                               max, text);
+    *value = (uint32_t)v;
+    return 0;
+}
+
 static int check_whole(veer__config *cfg, const int given[OPTION_COUNT], veer_error *err)
 {
     for (size_t i = 0; i < OPTION_COUNT; i++) {
@@ -192,30 +211,11 @@ static int check_whole(veer__config *cfg, const int given[OPTION_COUNT], veer_er
                                "--allowed-keys needs --server-key: the server's secret key file");
     if (cfg->act_auth && cfg->server_key_path[0] == '\0')
         return veer__error_set(err, VEER_ECONFIG, "--act-auth", "--act-auth needs --server-key and --allowed-keys");
-    cfg->act_cpu_on = cfg->act_cpu[0] != '\0';
-    if (cfg->act_cpu_on) {
-        char *end = NULL;
-        errno = 0;
-        unsigned long long v = strtoull(cfg->act_cpu, &end, 10);
-        if (errno != 0 || end == cfg->act_cpu || *end != '\0' || cfg->act_cpu[0] == '-' || v > 1023)
-            return veer__error_set(err, VEER_ECONFIG, "--act-cpu",
-                                   "--act-cpu: expected a CPU number from 0 to 1023, or empty for none; "
-                                   "got '%s'",
-                                   cfg->act_cpu);
-        cfg->act_cpu_index = (uint32_t)v;
-    }
-    cfg->cpu_latency_on = cfg->cpu_latency[0] != '\0';
-    if (cfg->cpu_latency_on) {
-        char *end = NULL;
-        errno = 0;
-        unsigned long long v = strtoull(cfg->cpu_latency, &end, 10);
-        if (errno != 0 || end == cfg->cpu_latency || *end != '\0' || cfg->cpu_latency[0] == '-' || v > 100000)
-            return veer__error_set(err, VEER_ECONFIG, "--cpu-latency-us",
-                                   "--cpu-latency-us: expected microseconds from 0 to 100000, or empty "
-                                   "for none; got '%s'",
-                                   cfg->cpu_latency);
-        cfg->cpu_latency_us = (uint32_t)v;
-    }
+    if ((rc = optional_u32("--act-cpu", cfg->act_cpu, 1023, "a CPU number", &cfg->act_cpu_on,
+                           &cfg->act_cpu_index, err)) < 0 ||
+        (rc = optional_u32("--cpu-latency-us", cfg->cpu_latency, 100000, "microseconds", &cfg->cpu_latency_on,
+                           &cfg->cpu_latency_us, err)) < 0)
+        return rc;
     if (cfg->state_dir[0] == '\0')
         return veer__error_set(err, VEER_ECONFIG, "--state-dir", "--state-dir must not be empty");
     return 0;
