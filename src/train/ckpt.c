@@ -68,6 +68,13 @@ static void put_floats(wbuf *w, const float *x, size_t n)
             X((t)->opt_actor.m, (t)->opt_actor.n);                                             \
             X((t)->opt_actor.v, (t)->opt_actor.n);                                             \
         }                                                                                      \
+        if ((t)->ba) { /* --average: present exactly when the fingerprint says so */         \
+            for (uint32_t h_ = 0; h_ < (t)->heads; h_++)                                       \
+                X((t)->fa[h_]->params, (t)->fa[h_]->nparams);                                  \
+            X((t)->ba->params, (t)->ba->nparams);                                              \
+            if ((t)->aa)                                                                       \
+                X((t)->aa->params, (t)->aa->nparams);                                          \
+        }                                                                                      \
     } while (0)
 
 int veer__trainer_save(const veer__trainer *t, const char *path, const char *fp,

@@ -182,10 +182,12 @@ static Veer__Bundle__Network *averaged_msg(arena *ar, const veer__nn *f1, const 
 static int b_of(const veer__trainer *t, const float *states, size_t count, float *out)
 {
     size_t D = t->log->state_dim, d = t->d;
+    veer__nn *f[VEER_TRAIN_MAX_HEADS], *b, *actor;
+    veer__trainer_outputs(t, f, &b, &actor);
     for (size_t at = 0; at < count; at += t->n) {
         size_t m = count - at < t->n ? count - at : t->n;
         const float *y;
-        int rc = veer__nn_forward(t->b, m, states + at * D, NULL, NULL, &y);
+        int rc = veer__nn_forward(b, m, states + at * D, NULL, NULL, &y);
         if (rc != 0)
             return rc;
         memcpy(out + at * d, y, m * d * sizeof(float));
@@ -270,13 +272,15 @@ int veer__train_export(const veer__trainer *t, const char *path, const char *set
     td->ridge = 1e-3f;
     m->task_defaults = td;
 
-    m->forward = t->heads == 2 ? averaged_msg(&ar, t->f[0], t->f[1]) : net_msg(&ar, t->f[0]);
-    m->backward = net_msg(&ar, t->b);
-    if (t->actor) {
-        m->actor = net_msg(&ar, t->actor);
+    veer__nn *f[VEER_TRAIN_MAX_HEADS], *b, *actor;
+    veer__trainer_outputs(t, f, &b, &actor);
+    m->forward = t->heads == 2 ? averaged_msg(&ar, f[0], f[1]) : net_msg(&ar, f[0]);
+    m->backward = net_msg(&ar, b);
+    if (actor) {
+        m->actor = net_msg(&ar, actor);
         m->actor_normalized = 1;
     }
-    if (ar.oom || !m->forward || !m->backward || (t->actor && !m->actor))
+    if (ar.oom || !m->forward || !m->backward || (actor && !m->actor))
         goto oom;
 
     ss->count = st.count;

@@ -31,9 +31,13 @@ static void describe(const veer_train_config *c, char *out, size_t cap)
 {
     /* The cosine schedule depends on the length, so a run resumed with another --steps would
      * not be the same run: the length is part of it. */
-    char schedule[48] = "";
+    char schedule[96] = "";
+    int sl = 0;
     if (c->lr_cosine)
-        snprintf(schedule, sizeof schedule, " lr_schedule=cosine:%llu", (unsigned long long)c->steps);
+        sl = snprintf(schedule, sizeof schedule, " lr_schedule=cosine:%llu",
+                      (unsigned long long)c->steps);
+    if (c->average > 0)
+        snprintf(schedule + sl, sizeof schedule - (size_t)sl, " average=%g", (double)c->average);
     int n = snprintf(out, cap,
                      "arch=%s z_dim=%u hidden=%u b_hidden=%u layers=%u k=%u heads=%u b_norm=%d "
                      "embed_std=%g batch=%u lr_f=%g lr_b=%g lr_actor=%g discount=%g tau=%g "

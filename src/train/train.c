@@ -74,7 +74,12 @@ int veer__train_preset(veer_train_config *c, const char *name)
          * the warehouse floor, 2,000 steps at batch 512 score 0.79 on goals, at 2,048 0.95 and
          * at 4,096 0.96, each step costing about proportionally more (our measurements). */
         c->batch = 2048;
-        c->steps = 2000;
+        /* 3,000 steps with the parameters' average exported: on the warehouse floor the goal
+         * score of the last parameters wobbles from run to run (0.82-0.89 slippery, 2,000-4,000
+         * steps), the average's does not (0.966 deterministic, 0.928 and 0.932 slippery with two
+         * training keys; our measurements, test_warehouse.py). */
+        c->steps = 3000;
+        c->average = 0.01f;
         c->lr_f = c->lr_b = 1e-3f;
         c->discount = 0.95f;
         /* Faster targets than the published 0.01: on the warehouse floor, 2,000 steps with
@@ -219,6 +224,8 @@ static int check_config(const veer_train_config *c, const veer__tlog *log, veer_
     REQUIRE(c->discount >= 0.0f && c->discount < 1.0f, "--discount",
             "--discount must be in [0, 1)");
     REQUIRE(c->tau > 0.0f && c->tau <= 1.0f, "--tau", "--tau must be in (0, 1]");
+    REQUIRE(c->average >= 0.0f && c->average <= 1.0f, "--average",
+            "--average must be in [0, 1] (0: export the last parameters)");
     REQUIRE(c->mix_ratio >= 0.0f && c->mix_ratio <= 1.0f, "--mix-ratio",
             "--mix-ratio must be in [0, 1]");
     REQUIRE(c->ortho >= 0.0f && isfinite(c->ortho), "--ortho", "--ortho must be >= 0");
@@ -325,6 +332,16 @@ int veer__trainer_create(const veer_train_config *c, const veer__tlog *log, veer
         if (rc == 0 && veer__adam_init(&t->opt_actor, t->actor->nparams, c->lr_actor) != 0)
             rc = veer__error_set(err, VEER_ENOMEM, "actor", NULL);
     }
+    if (rc == 0 && c->average > 0.0f) {
+        /* The averages start at the initial parameters; a checkpoint overwrites them. */
+        for (uint32_t h = 0; h < t->heads && rc == 0; h++)
+            if (veer__nn_clone(t->f[h], &t->fa[h]) != 0)
+                rc = veer__error_set(err, VEER_ENOMEM, "forward", NULL);
+        if (rc == 0 && veer__nn_clone(t->b, &t->ba) != 0)
+            rc = veer__error_set(err, VEER_ENOMEM, "backward", NULL);
+        if (rc == 0 && t->actor && veer__nn_clone(t->actor, &t->aa) != 0)
+            rc = veer__error_set(err, VEER_ENOMEM, "actor", NULL);
+    }
     if (rc != 0) {
         veer__trainer_destroy(t);
         return rc;
@@ -353,11 +370,14 @@ void veer__trainer_destroy(veer__trainer *t)
     for (uint32_t h = 0; h < VEER_TRAIN_MAX_HEADS; h++) {
         veer__nn_free(t->f[h]);
         veer__nn_free(t->ft[h]);
+        veer__nn_free(t->fa[h]);
         veer__adam_free(&t->opt_f[h]);
     }
     veer__nn_free(t->b);
     veer__nn_free(t->bt);
+    veer__nn_free(t->ba);
     veer__nn_free(t->actor);
+    veer__nn_free(t->aa);
     veer__adam_free(&t->opt_b);
     veer__adam_free(&t->opt_actor);
     float *bufs[] = {t->s, t->sn, t->a, t->an, t->cont, t->z, t->zmix, t->u, t->ft_mean,
@@ -579,6 +599,18 @@ int veer__trainer_step(veer__trainer *t, veer__train_losses *L)
     for (uint32_t h = 0; h < t->heads; h++)
         veer__nn_polyak(t->ft[h], t->f[h], c->tau);
     veer__nn_polyak(t->bt, t->b, c->tau);
+    if (t->ba) {
+        /* Polyak-Ruppert averaging (Polyak & Juditsky, "Acceleration of stochastic
+         * approximation by averaging", SIAM J. Control Optim. 30(4), 1992), in its exponential
+         * form: the bundle gets the average, which smooths out the last steps' minibatch noise.
+         * On the slippery warehouse floor it lifted the goal score from 0.88 to 0.91 at 2,000
+         * steps and to 0.93 at 3,000 (rate 0.01; our measurement). */
+        for (uint32_t h = 0; h < t->heads; h++)
+            veer__nn_polyak(t->fa[h], t->f[h], c->average);
+        veer__nn_polyak(t->ba, t->b, c->average);
+        if (t->actor)
+            veer__nn_polyak(t->aa, t->actor, c->average);
+    }
     t->step++;
     if (L) {
         L->fb = fb;
@@ -588,6 +620,16 @@ int veer__trainer_step(veer__trainer *t, veer__train_losses *L)
         L->actor_q = t->actor ? qsum / (double)n : NAN;
     }
     return 0;
+}
+
+void veer__trainer_outputs(const veer__trainer *t, veer__nn *f[VEER_TRAIN_MAX_HEADS], veer__nn **b,
+                           veer__nn **actor)
+{
+    int avg = t->ba != NULL;
+    for (uint32_t h = 0; h < t->heads; h++)
+        f[h] = avg ? t->fa[h] : t->f[h];
+    *b = avg ? t->ba : t->b;
+    *actor = avg && t->actor ? t->aa : t->actor;
 }
 
 double veer__trainer_bellman(veer__trainer *t)

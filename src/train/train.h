@@ -64,6 +64,8 @@ typedef struct veer_train_config {
     uint64_t steps;
     float lr_f, lr_b, lr_actor, discount, tau, ortho, mix_ratio, noise, noise_clip;
     int lr_cosine;    /* 1: every learning rate decays to 0 along a half cosine over `steps` */
+    float average;    /* 0: export the last parameters; else the rate of an exponential moving
+                         average of the parameters, which is what the bundle gets */
     uint64_t rng_key; /* start value of the random streams */
     int threads;
     float holdout;                /* fraction of transitions held out for the Bellman residual */
@@ -100,6 +102,8 @@ typedef struct veer__trainer {
     uint32_t d, n;                 /* z_dim, batch */
     uint32_t heads;
     veer__nn *f[VEER_TRAIN_MAX_HEADS], *ft[VEER_TRAIN_MAX_HEADS], *b, *bt, *actor;
+    /* With --average: the parameter averages the bundle gets (NULL otherwise). */
+    veer__nn *fa[VEER_TRAIN_MAX_HEADS], *ba, *aa;
     veer__adam opt_f[VEER_TRAIN_MAX_HEADS], opt_b, opt_actor;
     veer__rng rng;
     uint64_t step;
@@ -118,6 +122,11 @@ void veer__trainer_destroy(veer__trainer *t);
 
 /* One gradient step on a fresh batch; `losses` may be NULL. */
 int veer__trainer_step(veer__trainer *t, veer__train_losses *losses);
+
+/* The networks a bundle is made of: the parameter averages with --average, else the networks
+ * being trained. `f` gets `heads` entries; `actor` is NULL for discrete actions. */
+void veer__trainer_outputs(const veer__trainer *t, veer__nn *f[VEER_TRAIN_MAX_HEADS], veer__nn **b,
+                           veer__nn **actor);
 
 /* The FB Bellman residual on the held-out transitions, with the online networks on both sides
  * and fixed task vectors (the FB loss up to a constant independent of F and B). NaN when no

@@ -174,21 +174,25 @@ static void roundtrip(veer_train_config *c)
         for (size_t j = 0; j < d; j++)
             z[i * d + j] = (float)(rnd(&st) * 2 - 1);
     }
+    /* What the bundle must hold: the trained networks, or their averages with --average (the
+     * tabular preset's default). */
+    veer__nn *fo[VEER_TRAIN_MAX_HEADS], *bo, *ao;
+    veer__trainer_outputs(t, fo, &bo, &ao);
     const float *y;
     for (uint32_t h = 0; h < t->heads; h++) {
-        assert_int_equal(veer__nn_forward(t->f[h], n, s, a, z, &y), 0);
+        assert_int_equal(veer__nn_forward(fo[h], n, s, a, z, &y), 0);
         for (size_t i = 0; i < n * d; i++)
             want[i] += y[i] / (float)t->heads;
     }
     assert_int_equal(veer_eval_forward(ws, n, s, a, z, got), 0);
     for (size_t i = 0; i < n * d; i++)
         close_to("F", i, got[i], want[i], 1e-4);
-    assert_int_equal(veer__nn_forward(t->b, n, s, NULL, NULL, &y), 0);
+    assert_int_equal(veer__nn_forward(bo, n, s, NULL, NULL, &y), 0);
     assert_int_equal(veer_eval_backward(ws, n, s, got), 0);
     for (size_t i = 0; i < n * d; i++)
         close_to("B", i, got[i], y[i], 1e-4);
-    if (t->actor) {
-        assert_int_equal(veer__nn_forward(t->actor, n, s, NULL, z, &y), 0);
+    if (ao) {
+        assert_int_equal(veer__nn_forward(ao, n, s, NULL, z, &y), 0);
         assert_int_equal(veer_eval_actor(ws, n, s, z, got), 0);
         for (size_t i = 0; i < n * A; i++)
             close_to("actor", i, got[i], y[i], 1e-4);
@@ -298,12 +302,40 @@ static void run_ok(veer_train_config *c)
         fail_msg("run: %s (%s)", err.message, err.field);
 }
 
+/* Runs `c` to `stop` steps with checkpoints every 5, then again to `total`, which resumes. */
+static void run_stopped_and_resumed(veer_train_config *c, const char *ckpt, uint64_t stop,
+                                    uint64_t total)
+{
+    static char path[512];
+    path_in(path, sizeof path, ckpt);
+    c->checkpoint_path = path;
+    c->checkpoint_every = 5;
+    c->steps = stop;
+    run_ok(c);
+    c->steps = total;
+    run_ok(c);
+}
+
+/* 1 when the two files in the test directory hold the same bytes. */
+static int same_file(const char *a, const char *b)
+{
+    char p[512];
+    size_t la, lb;
+    path_in(p, sizeof p, a);
+    unsigned char *xa = slurp(p, &la);
+    path_in(p, sizeof p, b);
+    unsigned char *xb = slurp(p, &lb);
+    int same = la == lb && memcmp(xa, xb, la) == 0;
+    free(xa);
+    free(xb);
+    return same;
+}
+
 static void test_same_flags_same_bundle_and_resume(void **state)
 {
     (void)state;
     setenv("SOURCE_DATE_EPOCH", "1700000000", 1);
     veer_train_config c;
-    char ck[512];
     cont_config(&c, "r1.veer");
     c.steps = 30;
     run_ok(&c);
@@ -312,32 +344,16 @@ static void test_same_flags_same_bundle_and_resume(void **state)
     run_ok(&c);
     /* Stop at 13 steps, then resume to 30 from the checkpoint, under a third name. */
     cont_config(&c, "r3.veer");
-    path_in(ck, sizeof ck, "r3.ckpt");
-    c.checkpoint_path = ck;
-    c.steps = 13;
-    c.checkpoint_every = 5;
-    run_ok(&c);
-    c.steps = 30;
-    run_ok(&c);
+    run_stopped_and_resumed(&c, "r3.ckpt", 13, 30);
     /* A checkpoint from other settings is refused, not silently continued. */
     c.z_dim = 7;
     veer_error err;
     assert_int_equal(veer__train_run(&c, &err), VEER_ECONFIG);
     assert_string_equal(err.field, "--checkpoint");
 
-    size_t l1, l2, l3;
+    assert_true(same_file("r1.veer", "r2.veer"));
+    assert_true(same_file("r1.veer", "r3.veer"));
     char p[512];
-    path_in(p, sizeof p, "r1.veer");
-    unsigned char *b1 = slurp(p, &l1);
-    path_in(p, sizeof p, "r2.veer");
-    unsigned char *b2 = slurp(p, &l2);
-    path_in(p, sizeof p, "r3.veer");
-    unsigned char *b3 = slurp(p, &l3);
-    assert_int_equal(l1, l2);
-    assert_memory_equal(b1, b2, l1);
-    assert_int_equal(l1, l3);
-    assert_memory_equal(b1, b3, l1);
-    free(b1), free(b2), free(b3);
 
     /* The curve has a header and one row per evaluation (every steps/50 = 1 here) + step 0. */
     path_in(p, sizeof p, "r3.veer.curve.csv");
@@ -405,6 +421,78 @@ static void test_cosine_schedule(void **state)
     assert_string_equal(err.field, "--checkpoint");
 }
 
+/* --average RATE: the bundle's networks are the exponential moving average of the trained
+ * parameters, a_k = (1 - RATE) a_(k-1) + RATE θ_k from a_0 = θ_0 (the exponential form of
+ * Polyak & Juditsky's averaging, SIAM J. Control Optim. 30(4), 1992), recomputed here in double
+ * from a copy of the parameters after every step. A run stopped half-way and resumed from its
+ * checkpoint gives the same bundle, so the averages are in the checkpoint. */
+static void test_parameter_average(void **state)
+{
+    (void)state;
+    setenv("SOURCE_DATE_EPOCH", "1700000000", 1);
+    veer_train_config c;
+    cont_config(&c, "avg.veer");
+    c.average = 0.2f;
+    veer__tlog_spec spec = {.states_path = c.states_path, .actions_path = c.actions_path,
+                            .next_states_path = c.next_states_path, .action_dim = c.action_dim,
+                            .low = c.low, .high = c.high};
+    veer__tlog log;
+    veer_error err;
+    if (veer__tlog_load(&spec, &log, &err) != 0)
+        fail_msg("log: %s", err.message);
+    veer__trainer *t;
+    if (veer__trainer_create(&c, &log, &t, &err) != 0)
+        fail_msg("create: %s", err.message);
+    veer__nn *f[VEER_TRAIN_MAX_HEADS], *b, *actor;
+    veer__trainer_outputs(t, f, &b, &actor);
+    assert_ptr_equal(b, t->ba);
+    assert_ptr_equal(actor, t->aa);
+    assert_ptr_equal(f[0], t->fa[0]);
+    veer__nn *nets[3] = {t->f[0], t->b, t->actor}, *avgs[3] = {f[0], b, actor};
+    double *want[3];
+    for (int k = 0; k < 3; k++) {
+        want[k] = calloc(nets[k]->nparams, sizeof(double));
+        for (size_t i = 0; i < nets[k]->nparams; i++)
+            want[k][i] = nets[k]->params[i];
+    }
+    for (int step = 0; step < 12; step++) {
+        assert_int_equal(veer__trainer_step(t, NULL), 0);
+        for (int k = 0; k < 3; k++)
+            for (size_t i = 0; i < nets[k]->nparams; i++)
+                want[k][i] = 0.8 * want[k][i] + 0.2 * (double)nets[k]->params[i];
+    }
+    const char *names[3] = {"F average", "B average", "actor average"};
+    for (int k = 0; k < 3; k++) {
+        double moved = 0;
+        for (size_t i = 0; i < nets[k]->nparams; i++) {
+            close_to(names[k], i, avgs[k]->params[i], want[k][i], 1e-5);
+            moved = fmax(moved, fabs((double)avgs[k]->params[i] - nets[k]->params[i]));
+        }
+        assert_true(moved > 1e-6); /* the average lags the trained parameters */
+        free(want[k]);
+    }
+    veer__trainer_destroy(t);
+    veer__tlog_free(&log);
+
+    cont_config(&c, "avg1.veer");
+    c.average = 0.2f;
+    c.steps = 20;
+    run_ok(&c);
+    cont_config(&c, "avg2.veer");
+    c.average = 0.2f;
+    run_stopped_and_resumed(&c, "avg2.ckpt", 9, 20);
+    cont_config(&c, "avg3.veer");
+    c.steps = 20;
+    run_ok(&c);
+    assert_true(same_file("avg1.veer", "avg2.veer"));
+    assert_false(same_file("avg1.veer", "avg3.veer")); /* without --average: another bundle */
+
+    cont_config(&c, "avg4.veer");
+    c.average = 1.5f;
+    assert_int_equal(veer__train_run(&c, &err), VEER_ECONFIG);
+    assert_string_equal(err.field, "--average");
+}
+
 static int setup(void **state)
 {
     (void)state;
@@ -431,6 +519,7 @@ int main(void)
         cmocka_unit_test(test_roundtrip_table),
         cmocka_unit_test(test_same_flags_same_bundle_and_resume),
         cmocka_unit_test(test_cosine_schedule),
+        cmocka_unit_test(test_parameter_average),
     };
     return cmocka_run_group_tests(tests, setup, teardown);
 }

@@ -7,17 +7,22 @@ from veer_act_batch on every cell), and scores each served policy exactly: norma
 Reinforcement Learning, 2nd ed., section 4.4), J of a policy by solving (I - gamma P_pi) V = P_pi r
 (ibid. section 4.1).
 
-Targets from issue 5: mean goal score >= 0.95 (deterministic floor) and >= 0.9 (slippery), d = 32.
-The CI runs the tabular preset (batch 2,048, 2,000 steps; 2-4 minutes per floor on 2 cores).
-On this machine (OpenBLAS SkylakeX kernel, one thread) it scores 0.951 on the deterministic
-floor (target met, by a hair) and 0.873 on the slippery one (NOT MET). The batch was the lever:
-at batch 512 the same run scored 0.787 / 0.619; at 4,096, 0.963 on the deterministic floor.
-Slippery runs by hand: batch 2,048 with --rng-key 2 and 3 scored 0.859 and 0.854; 3,000 steps
-0.891, 4,000 steps 0.819, target rate 0.05 0.874; batch 4,096 0.884: spread between runs, not
-steady progress, and a few goals in pockets stay near 0 in every run. Dense rewards: 0.41 at d = 32
-beside a rank-d projection bound of 0.86. (Those runs: warehouse.py's main, by hand.) The
-thresholds below are the measured figures less a margin for other CPUs' rounding, so the test
-catches a regression without claiming the slippery target.
+Targets from issue 5: mean goal score >= 0.95 (deterministic floor) and >= 0.9 (slippery), d = 32;
+dense rewards reported beside the rank-d bound, aiming for >= 0.6 at d = 64. The tests assert
+those targets. The CI runs the tabular preset: batch 2,048, 3,000 steps, the bundle made of the
+parameters' exponential moving average (rate 0.01; Polyak & Juditsky 1992), about 3 minutes per
+floor on 2 cores.
+
+Measured on this machine (OpenBLAS SkylakeX kernel, one thread), training key 3 as below:
+deterministic 0.966, slippery 0.928 (training key 2: 0.932); dense at d = 64: 0.648 beside a
+bound of 0.978 (goals 0.997); dense at d = 32: about 0.5 beside 0.86. What got there: batch 512 ->
+2,048 (0.79 -> 0.95 deterministic, 0.62 -> 0.87 slippery at 2,000 steps), then the average
+(slippery 0.88 -> 0.91 at 2,000 steps, 0.93 at 3,000). Without the average the last parameters
+wobbled between runs (slippery 0.82-0.89 over keys and lengths). The margin is thin: the
+deterministic floor at 4,000 steps scored 0.949, one goal in a pocket of the lower-left room
+failing (score 0.02): a goal is lost when F misranks the actions at a doorway, far from the
+goal, where its successor measure is small; the optimal policy for B(s).z itself scores 1.0
+on every goal. (Those runs: warehouse.py's main, by hand.)
 """
 import os
 import subprocess
@@ -32,9 +37,10 @@ BUILD = os.environ.get("VEER_BUILD_DIR", "build")
 VEER = os.path.join(BUILD, "bin", "veer")
 GAMMA = 0.95
 
-# What the CI-length run must reach: measured 0.951 and 0.873 (see the docstring), less margin.
-GOAL_FLOOR_DETERMINISTIC = 0.93
-GOAL_FLOOR_SLIPPERY = 0.84
+# Issue 5's targets (measured 0.966, 0.928 and 0.648; see the docstring).
+GOAL_TARGET_DETERMINISTIC = 0.95
+GOAL_TARGET_SLIPPERY = 0.9
+DENSE_AIM_D64 = 0.6
 
 
 def train(tmp, slip, extra=()):
@@ -53,6 +59,14 @@ def train(tmp, slip, extra=()):
 def deterministic(tmp_path_factory):
     out = train(tmp_path_factory.mktemp("det"), 0.0)
     served = wh.Served(out, 32, BUILD)
+    yield out, wh.evaluate(served, 0.0, GAMMA)
+    served.close()
+
+
+@pytest.fixture(scope="module")
+def deterministic_d64(tmp_path_factory):
+    out = train(tmp_path_factory.mktemp("det64"), 0.0, ("--z-dim", "64"))
+    served = wh.Served(out, 64, BUILD)
     yield out, wh.evaluate(served, 0.0, GAMMA)
     served.close()
 
@@ -97,7 +111,7 @@ def test_goals_deterministic(deterministic):
     warnings.warn(f"deterministic floor, d=32: goal score mean {goals.mean():.3f} "
                   f"(min {goals.min():.3f}); dense mean {dense.mean():.3f}, "
                   f"rank-d projection bound {bound.mean():.3f}")
-    assert goals.mean() >= GOAL_FLOOR_DETERMINISTIC
+    assert goals.mean() >= GOAL_TARGET_DETERMINISTIC
 
 
 def test_goals_slippery(slippery):
@@ -105,7 +119,7 @@ def test_goals_slippery(slippery):
     warnings.warn(f"slippery floor (moves fail {wh.SLIP:.0%}), d=32: goal score mean "
                   f"{goals.mean():.3f} (min {goals.min():.3f}); dense mean {dense.mean():.3f}, "
                   f"rank-d projection bound {bound.mean():.3f}")
-    assert goals.mean() >= GOAL_FLOOR_SLIPPERY
+    assert goals.mean() >= GOAL_TARGET_SLIPPERY
 
 
 def test_dense_rewards_beat_random(deterministic):
@@ -114,6 +128,16 @@ def test_dense_rewards_beat_random(deterministic):
     _, (_, dense, bound) = deterministic
     assert dense.mean() > 0.1
     assert 0.0 < bound.mean() <= 1.0 + 1e-9
+
+
+def test_dense_rewards_d64(deterministic_d64):
+    """Issue 5's aim for dense rewards: a mean of at least 0.6 at d = 64, reported beside the
+    best a rank-d B allows."""
+    _, (goals, dense, bound) = deterministic_d64
+    warnings.warn(f"deterministic floor, d=64: dense mean {dense.mean():.3f} "
+                  f"(min {dense.min():.3f}), rank-d projection bound {bound.mean():.3f}; "
+                  f"goal score mean {goals.mean():.3f}")
+    assert dense.mean() >= DENSE_AIM_D64
 
 
 def test_bellman_residual_goes_down(deterministic):
@@ -145,3 +169,8 @@ def test_cli_refuses_bad_logs(tmp_path):
     p = subprocess.run(base + ["--discrete", "5", "--arch", "table"], capture_output=True,
                        text=True)
     assert p.returncode == 2 and "--state-counts" in p.stderr
+    for bad in ("2", "-0.1", "nan"):  # the average's rate is a fraction
+        p = subprocess.run(base + ["--discrete", "5", "--average", bad], capture_output=True,
+                           text=True)
+        assert p.returncode == 2 and "--average" in p.stderr, (bad, p.stderr)
+    assert not os.path.exists(f"{tmp_path}/x.veer")

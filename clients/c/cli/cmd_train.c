@@ -35,6 +35,8 @@ static void usage(FILE *to)
         "          --b-features I,...  --no-b-norm  --embed-std X\n"
         "training: --steps N  --batch N  --lr X (all three)  --lr-f X  --lr-b X  --lr-actor X\n"
         "          --lr-schedule constant|cosine   (cosine: every rate decays to 0 by --steps)\n"
+        "          --average RATE          export an exponential moving average of the\n"
+        "                                  parameters at this rate (0: the last ones)\n"
         "          --discount X  --tau X  --ortho X  --mix-ratio X  --noise X  --noise-clip X\n"
         "          --rng-key N  --threads N  --holdout FRACTION  --ref-count N\n"
         "output:   --eval-every N  --checkpoint FILE  --checkpoint-every N  --curve FILE\n"
@@ -254,6 +256,8 @@ static int run(int argc, char **argv)
             rc = parse_float(f, v, &c.lr_actor);
         } else if (IS("--discount")) {
             rc = parse_float(f, v, &c.discount);
+        } else if (IS("--average")) {
+            rc = parse_float(f, v, &c.average);
         } else if (IS("--tau")) {
             rc = parse_float(f, v, &c.tau);
         } else if (IS("--ortho")) {
