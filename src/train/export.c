@@ -179,6 +179,75 @@ static Veer__Bundle__Network *averaged_msg(arena *ar, const veer__nn *f1, const 
 }
 
 /* B over `count` rows of `states`, in batches, into out (count x d). */
+/* Two heads with branches and a head chain (--arch split) -> one network computing their
+ * average: the branches of both side by side, so the merge is [first's, second's]; every head
+ * layer but the last block-diagonal (linear) or over both halves (element-wise); the last
+ * linear ½[W₁ W₂] with bias ½(b₁ + b₂). The zero blocks cost the runtime twice the head's
+ * multiply-adds; F only gives the value reported beside a continuous action. */
+static Veer__Bundle__Network *averaged_head_msg(arena *ar, const veer__nn *f1, const veer__nn *f2)
+{
+    Veer__Bundle__Network *m = ar_alloc(ar, sizeof *m);
+    if (m == NULL)
+        return NULL;
+    veer__bundle__network__init(m);
+    uint32_t nb = f1->nbranches + f2->nbranches, nh = f1->head.nlayers;
+    m->n_branches = nb;
+    m->branches = ar_alloc(ar, nb * sizeof *m->branches);
+    m->n_head = nh;
+    m->head = ar_alloc(ar, nh * sizeof *m->head);
+    if (m->branches == NULL || m->head == NULL)
+        return NULL;
+    for (uint32_t b = 0; b < nb; b++) {
+        const veer__nn *f = b < f1->nbranches ? f1 : f2;
+        const veer__nn_chain *c = &f->branch[b < f1->nbranches ? b : b - f1->nbranches];
+        if ((m->branches[b] = branch_msg(ar, f, c, c->nlayers)) == NULL)
+            return NULL;
+    }
+    m->merge = VEER__BUNDLE__MERGE_KIND__MERGE_CONCAT;
+    for (uint32_t i = 0; i < nh; i++) {
+        const veer__nn_layer *l1 = &f1->head.layers[i], *l2 = &f2->head.layers[i];
+        Veer__Bundle__Layer *lm = ar_alloc(ar, sizeof *lm);
+        if (lm == NULL)
+            return NULL;
+        veer__bundle__layer__init(lm);
+        lm->kind = (Veer__Bundle__LayerKind)l1->kind;
+        uint32_t i1 = l1->in, i2 = l2->in, o1 = l1->out, o2 = l2->out;
+        const float *w1 = f1->params + l1->w_off, *w2 = f2->params + l2->w_off;
+        const float *b1 = f1->params + l1->b_off, *b2 = f2->params + l2->b_off;
+        int last = i + 1 == nh;
+        lm->in_dim = i1 + i2;
+        lm->out_dim = last ? o1 : o1 + o2;
+        if (l1->kind != VEER_NN_LINEAR) { /* element-wise: ReLU */
+            m->head[i] = lm;
+            continue;
+        }
+        lm->n_weight = (size_t)lm->out_dim * lm->in_dim;
+        lm->weight = ar_alloc(ar, lm->n_weight * sizeof(float));
+        lm->n_bias = lm->out_dim;
+        lm->bias = ar_alloc(ar, lm->n_bias * sizeof(float));
+        if (lm->weight == NULL || lm->bias == NULL)
+            return NULL;
+        float *w = lm->weight;
+        size_t in = lm->in_dim;
+        for (uint32_t o = 0; o < o1; o++) {
+            float s = last ? 0.5f : 1.0f;
+            for (uint32_t k = 0; k < i1; k++)
+                w[(size_t)o * in + k] = s * w1[(size_t)o * i1 + k];
+            if (last)
+                for (uint32_t k = 0; k < i2; k++)
+                    w[(size_t)o * in + i1 + k] = s * w2[(size_t)o * i2 + k];
+            lm->bias[o] = last ? 0.5f * (b1[o] + b2[o]) : b1[o];
+        }
+        for (uint32_t o = 0; !last && o < o2; o++) {
+            for (uint32_t k = 0; k < i2; k++)
+                w[(size_t)(o1 + o) * in + i1 + k] = w2[(size_t)o * i2 + k];
+            lm->bias[o1 + o] = b2[o];
+        }
+        m->head[i] = lm;
+    }
+    return ar->oom ? NULL : m;
+}
+
 static int b_of(const veer__trainer *t, const float *states, size_t count, float *out)
 {
     size_t D = t->log->state_dim, d = t->d;
@@ -274,7 +343,9 @@ int veer__train_export(const veer__trainer *t, const char *path, const char *set
 
     veer__nn *f[VEER_TRAIN_MAX_HEADS], *b, *actor;
     veer__trainer_outputs(t, f, &b, &actor);
-    m->forward = t->heads == 2 ? averaged_msg(&ar, f[0], f[1]) : net_msg(&ar, f[0]);
+    m->forward = t->heads == 1             ? net_msg(&ar, f[0])
+                 : f[0]->head.nlayers == 0 ? averaged_msg(&ar, f[0], f[1])
+                                           : averaged_head_msg(&ar, f[0], f[1]);
     m->backward = net_msg(&ar, b);
     if (actor) {
         m->actor = net_msg(&ar, actor);

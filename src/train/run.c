@@ -43,7 +43,9 @@ static void describe(const veer_train_config *c, char *out, size_t cap)
                      "embed_std=%g batch=%u lr_f=%g lr_b=%g lr_actor=%g discount=%g tau=%g "
                      "ortho=%g mix_ratio=%g noise=%g noise_clip=%g rng_key=%llu holdout=%g "
                      "ref_count=%u ends=%s%s actions=",
-                     c->arch == VEER_TRAIN_TABLE ? "table" : "mlp", c->z_dim, c->hidden,
+                     c->arch == VEER_TRAIN_TABLE   ? "table"
+                     : c->arch == VEER_TRAIN_SPLIT ? "split"
+                                                   : "mlp", c->z_dim, c->hidden,
                      c->b_hidden, c->layers, c->bilinear_k, c->heads, c->b_norm,
                      (double)c->embed_std, c->batch, (double)c->lr_f, (double)c->lr_b,
                      (double)c->lr_actor, (double)c->discount, (double)c->tau, (double)c->ortho,

@@ -136,6 +136,27 @@ static int build_f(const veer__trainer *t, veer__nn **out, veer__rng *rng, veer_
         rc |= veer__nn_add_layer(nn, 1, VEER_NN_LINEAR, c->bilinear_k, 0, NULL);
         rc |= veer__nn_add_layer(nn, 1, VEER_NN_RELU, 0, 0, NULL);
         rc |= veer__nn_set_merge(nn, VEER_NN_BILINEAR, c->bilinear_k, 0, 1);
+    } else if (c->arch == VEER_TRAIN_SPLIT) {
+        /* Two embeddings of width `hidden`, then the head: (layers - 1) x [linear(hidden) →
+         * ReLU] and linear(d). The published F (Touati, Rapin & Ollivier, ICLR 2023; from
+         * memory) embeds (s, a) and (s, z) apart the same way. */
+        for (uint32_t br = 0; br < 2; br++) {
+            veer__nn_add_branch(nn, br == 0 ? "state-action" : "state-task");
+            rc |= veer__nn_add_input(nn, br, VEER_NN_IN_STATE, 0, NULL, 0);
+            rc |= veer__nn_add_input(nn, br, br == 0 ? VEER_NN_IN_ACTION : VEER_NN_IN_TASK, 0,
+                                     NULL, 0);
+            rc |= veer__nn_add_layer(nn, br, VEER_NN_LINEAR, c->hidden, 0, NULL);
+            rc |= veer__nn_add_layer(nn, br, VEER_NN_LAYER_NORM, 0, 0, NULL);
+            rc |= veer__nn_add_layer(nn, br, VEER_NN_TANH, 0, 0, NULL);
+            rc |= veer__nn_add_layer(nn, br, VEER_NN_LINEAR, c->hidden, 0, NULL);
+            rc |= veer__nn_add_layer(nn, br, VEER_NN_RELU, 0, 0, NULL);
+        }
+        rc |= veer__nn_set_merge(nn, VEER_NN_CONCAT, 0, 0, 0);
+        for (uint32_t i = 1; i < c->layers; i++) {
+            rc |= veer__nn_add_layer(nn, VEER_NN_HEAD, VEER_NN_LINEAR, c->hidden, 0, NULL);
+            rc |= veer__nn_add_layer(nn, VEER_NN_HEAD, VEER_NN_RELU, 0, 0, NULL);
+        }
+        rc |= veer__nn_add_layer(nn, VEER_NN_HEAD, VEER_NN_LINEAR, t->d, 0, NULL);
     } else {
         veer__nn_add_branch(nn, "state-action-task");
         rc |= veer__nn_add_input(nn, 0, VEER_NN_IN_STATE, 0, NULL, 0);

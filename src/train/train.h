@@ -9,6 +9,10 @@
  * Two network layouts:
  *   VEER_TRAIN_MLP   F over [state, action, z] (two heads for continuous actions, averaged),
  *                    B over the state (or the chosen features), an actor over [state, z].
+ *   VEER_TRAIN_SPLIT as MLP, but F reads (state, action) and (state, z) in two branches, each
+ *                    linear → layer norm → tanh → linear → ReLU, joined by concatenation and
+ *                    a head of (layers) ReLU layers: the published F's shape, which embeds the
+ *                    task apart from the action before mixing them.
  *   VEER_TRAIN_TABLE for small discrete problems whose state features are indices:
  *                    F(s,a,z) = W[s,a]·φ(z) + b[s,a] with φ(z) = ReLU(zU + c) (an embedding
  *                    branch and a task branch joined by the bundle's bilinear merge), B(s) an
@@ -27,7 +31,7 @@
 
 #include "veer/error.h"
 
-enum { VEER_TRAIN_MLP = 1, VEER_TRAIN_TABLE = 2 };
+enum { VEER_TRAIN_MLP = 1, VEER_TRAIN_TABLE = 2, VEER_TRAIN_SPLIT = 3 };
 
 #define VEER_TRAIN_MAX_ACTION_DIM 64
 

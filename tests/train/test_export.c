@@ -273,6 +273,19 @@ static void test_roundtrip_continuous(void **state)
     roundtrip(&c);
 }
 
+/* --arch split with two heads: the bundle's one network (four branches, a block-diagonal
+ * head) must compute the mean of the trainer's two. */
+static void test_roundtrip_split(void **state)
+{
+    (void)state;
+    veer_train_config c;
+    cont_config(&c, "split.veer");
+    c.arch = VEER_TRAIN_SPLIT;
+    c.layers = 3;
+    assert_int_equal(c.heads, 2);
+    roundtrip(&c);
+}
+
 static void test_roundtrip_table(void **state)
 {
     (void)state;
@@ -516,6 +529,7 @@ int main(void)
 {
     const struct CMUnitTest tests[] = {
         cmocka_unit_test(test_roundtrip_continuous),
+        cmocka_unit_test(test_roundtrip_split),
         cmocka_unit_test(test_roundtrip_table),
         cmocka_unit_test(test_same_flags_same_bundle_and_resume),
         cmocka_unit_test(test_cosine_schedule),

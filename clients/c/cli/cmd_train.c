@@ -30,7 +30,8 @@ static void usage(FILE *to)
         "                                  next states are real (training continues through)\n"
         "          --step SECONDS          decision time step of the log (stored in the bundle)\n"
         "presets:  --preset published|small|tabular   (default small; flags override it)\n"
-        "networks: --arch mlp|table  --state-counts C,...  (table: count per state feature)\n"
+        "networks: --arch mlp|split|table  --state-counts C,...  (table: count per state feature;\n"
+        "                                  split: F embeds (state, action) and (state, z) apart)\n"
         "          --z-dim N  --hidden N  --b-hidden N  --layers N  --k N  --heads 1|2\n"
         "          --b-features I,...  --no-b-norm  --embed-std X\n"
         "training: --steps N  --batch N  --lr X (all three)  --lr-f X  --lr-b X  --lr-actor X\n"
@@ -221,8 +222,10 @@ static int run(int argc, char **argv)
                 c.arch = VEER_TRAIN_MLP;
             else if (strcmp(v, "table") == 0)
                 c.arch = VEER_TRAIN_TABLE;
+            else if (strcmp(v, "split") == 0)
+                c.arch = VEER_TRAIN_SPLIT;
             else
-                rc = bad_value(f, v, "mlp or table");
+                rc = bad_value(f, v, "mlp, split or table");
         } else if (IS("--state-counts")) {
             rc = parse_u32_list(f, v, c.state_counts, 3, &c.nstate_counts);
         } else if (IS("--b-features")) {
