@@ -6,7 +6,7 @@
  * products; the target is at least 50%.
  *
  * Also reported: the tabular layout at the warehouse floor's size (9 x 11 cells, 5 actions,
- * k = 256, d = 32, batch 512), whose step is dominated by embedding gathers and Adam over the
+ * k = 256, d = 32, the tabular preset's batch), whose step is dominated by embedding gathers and Adam over the
  * tables rather than by products, so it has no product floor.
  *
  * usage: bench_train [steps]   (default 200). Prints figures; asserts nothing. */
@@ -162,7 +162,7 @@ int main(int argc, char **argv)
     time_steps(t, 5);
     int tsteps = steps / 4 ? steps / 4 : 1;
     double ts = time_steps(t, tsteps) / tsteps;
-    printf("tabular (9x11 cells, 5 actions, k=256, d=32, batch 512):\n");
+    printf("tabular (9x11 cells, 5 actions, k=256, d=32, batch %u):\n", c.batch);
     printf("  training step          %.3f ms  (%.1f steps/s; %llu steps take %.0f s)\n", ts * 1e3,
            1.0 / ts, (unsigned long long)c.steps, (double)c.steps * ts);
     veer__trainer_destroy(t);
