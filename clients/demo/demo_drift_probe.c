@@ -93,7 +93,7 @@ int main(int argc, char **argv)
                 "heavy parcel, and whether the exceedance alarm was raised while it was on.\n");
         return argc < 3 ? 2 : 0;
     }
-    double heavy_at = 12, heavy_for = 6, masses[32];
+    double heavy_at = 16, heavy_for = 6, masses[32];
     int n = 0;
     for (int i = 2; i < argc; i++) {
         char *end;
