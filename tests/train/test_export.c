@@ -133,8 +133,8 @@ static void close_to(const char *what, size_t i, double got, double want, double
         fail_msg("%s[%zu]: runtime %.7g, trainer/reference %.7g", what, i, got, want);
 }
 
-/* Trains in memory, exports, reopens with libveer and compares the networks. */
-static void roundtrip(veer_train_config *c)
+/* Loads the log `c` names (as veer train would) into `log` and creates a trainer for it. */
+static veer__trainer *trainer_for(const veer_train_config *c, veer__tlog *log)
 {
     veer__tlog_spec spec = {.states_path = c->states_path, .actions_path = c->actions_path,
                             .next_states_path = c->next_states_path,
@@ -143,12 +143,21 @@ static void roundtrip(veer_train_config *c)
                             .low = c->low, .high = c->high,
                             .nstate_counts = c->arch == VEER_TRAIN_TABLE ? c->nstate_counts : 0,
                             .state_counts = c->state_counts};
+    veer_error err;
+    if (veer__tlog_load(&spec, log, &err) != 0)
+        fail_msg("log: %s", err.message);
+    veer__trainer *t;
+    if (veer__trainer_create(c, log, &t, &err) != 0)
+        fail_msg("create: %s", err.message);
+    return t;
+}
+
+/* Trains in memory, exports, reopens with libveer and compares the networks. */
+static void roundtrip(veer_train_config *c)
+{
     veer__tlog log;
     veer_error err;
-    assert_int_equal(veer__tlog_load(&spec, &log, &err), 0);
-    veer__trainer *t;
-    if (veer__trainer_create(c, &log, &t, &err) != 0)
-        fail_msg("create: %s", err.message);
+    veer__trainer *t = trainer_for(c, &log);
     for (int i = 0; i < 25; i++)
         assert_int_equal(veer__trainer_step(t, NULL), 0);
     if (veer__train_export(t, c->out_path, "test", "2026-01-01T00:00:00Z", &err) != 0)
@@ -390,16 +399,9 @@ static void test_cosine_schedule(void **state)
     table_config(&c, "cos.veer");
     c.lr_cosine = 1;
     c.steps = 30;
-    veer__tlog_spec spec = {.states_path = c.states_path, .actions_path = c.actions_path,
-                            .next_states_path = c.next_states_path, .action_count = c.action_count,
-                            .action_dim = 1, .nstate_counts = c.nstate_counts,
-                            .state_counts = c.state_counts};
     veer__tlog log;
     veer_error err;
-    assert_int_equal(veer__tlog_load(&spec, &log, &err), 0);
-    veer__trainer *t;
-    if (veer__trainer_create(&c, &log, &t, &err) != 0)
-        fail_msg("create: %s", err.message);
+    veer__trainer *t = trainer_for(&c, &log);
     const double pi = 3.14159265358979323846;
     for (int k = 0; k < 30; k++) {
         assert_int_equal(veer__trainer_step(t, NULL), 0);
@@ -446,16 +448,9 @@ static void test_parameter_average(void **state)
     veer_train_config c;
     cont_config(&c, "avg.veer");
     c.average = 0.2f;
-    veer__tlog_spec spec = {.states_path = c.states_path, .actions_path = c.actions_path,
-                            .next_states_path = c.next_states_path, .action_dim = c.action_dim,
-                            .low = c.low, .high = c.high};
     veer__tlog log;
     veer_error err;
-    if (veer__tlog_load(&spec, &log, &err) != 0)
-        fail_msg("log: %s", err.message);
-    veer__trainer *t;
-    if (veer__trainer_create(&c, &log, &t, &err) != 0)
-        fail_msg("create: %s", err.message);
+    veer__trainer *t = trainer_for(&c, &log);
     veer__nn *f[VEER_TRAIN_MAX_HEADS], *b, *actor;
     veer__trainer_outputs(t, f, &b, &actor);
     assert_ptr_equal(b, t->ba);

@@ -169,6 +169,9 @@ def test_cli_refuses_bad_logs(tmp_path):
     p = subprocess.run(base + ["--discrete", "5", "--arch", "table"], capture_output=True,
                        text=True)
     assert p.returncode == 2 and "--state-counts" in p.stderr
+    p = subprocess.run(base + ["--discrete", "5", "--arch", "wide"], capture_output=True,
+                       text=True)
+    assert p.returncode == 2 and "--arch 'wide'" in p.stderr and "mlp, split or table" in p.stderr
     for bad in ("2", "-0.1", "nan"):  # the average's rate is a fraction
         p = subprocess.run(base + ["--discrete", "5", "--average", bad], capture_output=True,
                            text=True)
