@@ -16,6 +16,14 @@
  * (J − J_random) / (J_top − J_random) with J_top the return of reward 1 at every decision (the
  * suite's rewards are at most 1). No planner runs there, so the selection takes seconds; the
  * ranking needs only a common scale per task, not the planner's.
+ *
+ * --bootstrap K measures how much a score owes to the particular reward samples: the task is
+ * encoded again from K resamples of the reference states drawn with replacement (Efron's
+ * bootstrap, Ann. Statist. 7(1), 1979), each evaluated from the same starts. The z of a resample
+ * differs from the full set's by well under a degree, yet the policy can settle at another pose
+ * (clients/demo/README.md), so the spread is part of the figure. With --select, a bundle's
+ * held-out score becomes the mean over the full set and the K resamples, so the choice of
+ * checkpoint rests less on one encoding.
  */
 #include <cjson/cJSON.h>
 #include <errno.h>
@@ -29,8 +37,11 @@
 #include "demo_fb.h"
 #include "eval.h"
 #include "tasks.h"
+#include "train/rng.h"
 
 #define EXIT_REFUSED 1
+#define MAX_BOOTSTRAP 200
+#define BOOTSTRAP_KEY 20261202u /* fixed, so the resamples are the same for every bundle */
 #define EXIT_USAGE 2
 
 /* Held out from the reported evaluation (eval.c's starts): at rest to the left, raised to the
@@ -44,7 +55,7 @@ static const double heldout_starts[4][4] = {
 
 typedef struct options {
     const char *bundle, *baselines, *json;
-    long query_ms, decisions;
+    long query_ms, decisions, bootstrap;
     int center, quiet;
     const char **select;
     int nselect;
@@ -63,9 +74,13 @@ static void usage(FILE *to)
             "  --no-center         encode reward samples without subtracting their mean\n"
             "  --json PATH         also write the figures as JSON (with one probe action per\n"
             "                      task: the state, the task vector and the action)\n"
+            "  --bootstrap K       also encode each task from K resamples of the reward samples\n"
+            "                      (with replacement) and report the scores' spread, 0 to %d\n"
+            "                      (default 0); before --select, rank on the mean over them\n"
             "  --select PATH...    rank bundles on held-out starts, print the best path\n"
             "  --quiet             no table\n"
-            "exit codes: 0 ok, 1 refused, 2 usage\n");
+            "exit codes: 0 ok, 1 refused, 2 usage\n",
+            MAX_BOOTSTRAP);
 }
 
 static int parse_args(int argc, char **argv, options *o)
@@ -91,7 +106,8 @@ static int parse_args(int argc, char **argv, options *o)
         } else if (strcmp(a, "--quiet") == 0) {
             o->quiet = 1;
         } else if (strcmp(a, "--bundle") == 0 || strcmp(a, "--baselines") == 0 ||
-                   strcmp(a, "--json") == 0 || strcmp(a, "--query-ms") == 0) {
+                   strcmp(a, "--json") == 0 || strcmp(a, "--query-ms") == 0 ||
+                   strcmp(a, "--bootstrap") == 0) {
             if (v == NULL || *v == '\0') {
                 fprintf(stderr, "veer-arm-fb-eval: %s needs a value\n", a);
                 return -1;
@@ -102,7 +118,16 @@ static int parse_args(int argc, char **argv, options *o)
                 o->baselines = v;
             else if (strcmp(a, "--json") == 0)
                 o->json = v;
-            else {
+            else if (strcmp(a, "--bootstrap") == 0) {
+                char *end;
+                errno = 0;
+                o->bootstrap = strtol(v, &end, 10);
+                if (*end || errno || o->bootstrap < 0 || o->bootstrap > MAX_BOOTSTRAP) {
+                    fprintf(stderr, "veer-arm-fb-eval: --bootstrap needs 0 to %d, got '%s'\n",
+                            MAX_BOOTSTRAP, v);
+                    return -1;
+                }
+            } else {
                 char *end;
                 errno = 0;
                 o->query_ms = strtol(v, &end, 10);
@@ -254,6 +279,63 @@ static int eval_task(veer_demo_fb_policy *fb, const veer_arm_params *p, const ve
     return rc;
 }
 
+/* Returns of `task` encoded from `k` bootstrap resamples of the bundle's reference states:
+ * j[i] for resample i (k doubles, caller-owned). Every task and every bundle sees the same
+ * draws (the generator restarts from BOOTSTRAP_KEY), so resample i is one sample set a
+ * supervisor might have sent, and a per-resample mean over tasks means something. */
+static int bootstrap_task(veer_demo_fb_policy *fb, const veer_arm_params *p,
+                          const veer_arm_task *task, const double (*starts)[4], int nstarts,
+                          const veer_arm_episode *e, int center, long k, double *j, veer_error *err)
+{
+    veer_demo_task_spec full;
+    int rc = veer_demo_task_spec_build(fb->bundle, task, p, VEER_DEMO_ENCODE_SAMPLES, center, &full,
+                                       err);
+    if (rc)
+        return rc;
+    uint32_t n = full.spec.count;
+    float *states = veer__malloc(sizeof(float) * VEER_ARM_OBS_DIM * n);
+    float *values = veer__malloc(sizeof(float) * n);
+    if (states == NULL || values == NULL)
+        rc = veer__error_set(err, VEER_ENOMEM, "bootstrap", NULL);
+    veer__rng rng;
+    veer__rng_init(&rng, BOOTSTRAP_KEY);
+    veer_arm_policy pol = {.name = "fb", .act = veer_demo_fb_policy_act, .ctx = fb};
+    for (long i = 0; i < k && rc == 0; i++) {
+        for (uint32_t r = 0; r < n; r++) {
+            uint64_t src = veer__rng_below(&rng, n);
+            memcpy(states + (size_t)r * VEER_ARM_OBS_DIM, full.states + src * VEER_ARM_OBS_DIM,
+                   sizeof(float) * VEER_ARM_OBS_DIM);
+            values[r] = full.values[src];
+        }
+        veer_task_spec spec = full.spec;
+        spec.states = states;
+        spec.values = values;
+        if ((rc = veer_demo_fb_policy_set_task(fb, &spec, NULL, err)) == 0)
+            rc = veer_arm_eval_policy(p, task, starts, nstarts, 1, e, &pol, &j[i], NULL, err);
+    }
+    veer__free(states);
+    veer__free(values);
+    veer_demo_task_spec_free(&full);
+    return rc;
+}
+
+static int cmp_double(const void *a, const void *b)
+{
+    double x = *(const double *)a, y = *(const double *)b;
+    return (x > y) - (x < y);
+}
+
+/* The q-quantile (0 ≤ q ≤ 1) of x[0..n), by linear interpolation between order statistics (the
+ * rule NumPy's percentile uses by default). Sorts x in place. */
+static double quantile(double *x, long n, double q)
+{
+    qsort(x, (size_t)n, sizeof *x, cmp_double);
+    double pos = q * (double)(n - 1);
+    long lo = (long)floor(pos);
+    long hi = lo + 1 < n ? lo + 1 : lo;
+    return x[lo] + (pos - (double)lo) * (x[hi] - x[lo]);
+}
+
 static int open_policy(const char *path, veer_bundle **b, veer_demo_fb_policy *fb)
 {
     veer_error err = {0};
@@ -305,6 +387,18 @@ static int run_select(const options *o)
             }
             double top = (double)e.decisions;
             double s = (r.j_fb - j_random[t]) / (top - j_random[t]);
+            if (o->bootstrap > 0) {
+                double jb[MAX_BOOTSTRAP];
+                if (bootstrap_task(&fb, &p, &veer_arm_tasks[t], heldout_starts, 4, &e, o->center,
+                                   o->bootstrap, jb, &err)) {
+                    fprintf(stderr, "\nveer-arm-fb-eval: %s: %s\n", veer_arm_tasks[t].name,
+                            err.message);
+                    return EXIT_REFUSED;
+                }
+                for (long i = 0; i < o->bootstrap; i++)
+                    s += (jb[i] - j_random[t]) / (top - j_random[t]);
+                s /= (double)(o->bootstrap + 1);
+            }
             fprintf(stderr, " %s %.3f", veer_arm_tasks[t].name, s);
             sum += s;
         }
@@ -317,6 +411,48 @@ static int run_select(const options *o)
     }
     printf("%s\n", o->select[best]);
     return 0;
+}
+
+/* The bootstrap's figures for the reported evaluation: per task and for the mean over tasks,
+ * the median and the 10th and 90th percentiles of the score over the resamples. */
+typedef struct boot_summary {
+    long k;
+    double scores[VEER_ARM_TASK_COUNT][MAX_BOOTSTRAP]; /* per resample, in draw order */
+    double task[VEER_ARM_TASK_COUNT][3];
+    double mean[3];
+} boot_summary;
+
+static void summarise_bootstrap(const baselines *bl, long k, double (*jb)[MAX_BOOTSTRAP],
+                                boot_summary *out)
+{
+    static const double qs[3] = {0.5, 0.1, 0.9};
+    double scores[MAX_BOOTSTRAP], means[MAX_BOOTSTRAP] = {0};
+    out->k = k;
+    for (int t = 0; t < VEER_ARM_TASK_COUNT; t++) {
+        for (long i = 0; i < k; i++) {
+            scores[i] = veer_arm_normalised_score(jb[t][i], bl->j_random[t], bl->j_cem[t]);
+            out->scores[t][i] = scores[i];
+            means[i] += scores[i] / VEER_ARM_TASK_COUNT;
+        }
+        for (int q = 0; q < 3; q++)
+            out->task[t][q] = quantile(scores, k, qs[q]);
+    }
+    for (int q = 0; q < 3; q++)
+        out->mean[q] = quantile(means, k, qs[q]);
+}
+
+static void print_bootstrap(const boot_summary *bs, const task_result *res, const baselines *bl)
+{
+    printf("\nThe same scores with each task encoded from %ld bootstrap resamples of the reference "
+           "states (one draw per resample, shared by the tasks): median and 10–90 %% range.\n\n",
+           bs->k);
+    printf("| task | score (all samples) | median | 10 %% | 90 %% |\n");
+    printf("|---|---:|---:|---:|---:|\n");
+    for (int t = 0; t < VEER_ARM_TASK_COUNT; t++)
+        printf("| %s | %.2f | %.2f | %.2f | %.2f |\n", veer_arm_tasks[t].name,
+               veer_arm_normalised_score(res[t].j_fb, bl->j_random[t], bl->j_cem[t]),
+               bs->task[t][0], bs->task[t][1], bs->task[t][2]);
+    printf("| **mean** | | **%.2f** | %.2f | %.2f |\n", bs->mean[0], bs->mean[1], bs->mean[2]);
 }
 
 static void print_table(const char *model, long query_ms, const baselines *bl,
@@ -342,12 +478,12 @@ static void print_table(const char *model, long query_ms, const baselines *bl,
         else
             printf("%.2f |\n", veer_arm_normalised_score(r->j_goal, bl->j_random[t], bl->j_cem[t]));
     }
-    printf("| **mean** | | | | | **%.2f** | %.2f (goals for the reach kinds) |\n", mean,
-           mean_goal);
+    printf("| **mean** | | | | | **%.2f** | %.2f (goals for the reach kinds) |\n", mean, mean_goal);
 }
 
 static int write_json(const char *path, const options *o, const baselines *bl, long query_ms,
-                      const task_result *res, uint32_t z_dim, double mean, double mean_goal)
+                      const task_result *res, uint32_t z_dim, double mean, double mean_goal,
+                      const boot_summary *bs)
 {
     cJSON *root = cJSON_CreateObject();
     cJSON_AddStringToObject(root, "kind", "veer demo arm FB evaluation");
@@ -357,6 +493,13 @@ static int write_json(const char *path, const options *o, const baselines *bl, l
     cJSON_AddBoolToObject(root, "center", o->center);
     cJSON_AddNumberToObject(root, "mean_score", mean);
     cJSON_AddNumberToObject(root, "mean_score_reach_goals", mean_goal);
+    if (bs != NULL) {
+        cJSON *boot = cJSON_AddObjectToObject(root, "bootstrap");
+        cJSON_AddNumberToObject(boot, "resamples", (double)bs->k);
+        cJSON_AddNumberToObject(boot, "mean_score_median", bs->mean[0]);
+        cJSON_AddNumberToObject(boot, "mean_score_p10", bs->mean[1]);
+        cJSON_AddNumberToObject(boot, "mean_score_p90", bs->mean[2]);
+    }
     cJSON *tasks = cJSON_AddArrayToObject(root, "tasks");
     for (int t = 0; t < VEER_ARM_TASK_COUNT; t++) {
         const task_result *r = &res[t];
@@ -371,6 +514,13 @@ static int write_json(const char *path, const options *o, const baselines *bl, l
                                 veer_arm_normalised_score(r->j_fb, bl->j_random[t], bl->j_cem[t]));
         if (!isnan(r->r2))
             cJSON_AddNumberToObject(e, "r2", r->r2);
+        if (bs != NULL) {
+            cJSON_AddNumberToObject(e, "bootstrap_score_median", bs->task[t][0]);
+            cJSON_AddNumberToObject(e, "bootstrap_score_p10", bs->task[t][1]);
+            cJSON_AddNumberToObject(e, "bootstrap_score_p90", bs->task[t][2]);
+            cJSON_AddItemToObject(e, "bootstrap_scores",
+                                  cJSON_CreateDoubleArray(bs->scores[t], (int)bs->k));
+        }
         cJSON *probe = cJSON_AddObjectToObject(e, "probe");
         cJSON_AddItemToObject(probe, "state",
                               cJSON_CreateFloatArray(r->probe_state, VEER_ARM_OBS_DIM));
@@ -447,14 +597,37 @@ int main(int argc, char **argv)
         sum += s;
         sum_goal += sg;
     }
+    /* The bootstrap: VEER_ARM_TASK_COUNT × MAX_BOOTSTRAP returns, about 0.4 s each. */
+    double(*jb)[MAX_BOOTSTRAP] = NULL;
+    static boot_summary bs; /* 11 kB: kept off the stack */
+    if (rc == 0 && o.bootstrap > 0) {
+        jb = veer__malloc(sizeof(*jb) * VEER_ARM_TASK_COUNT);
+        if (jb == NULL)
+            rc = -1;
+        for (int t = 0; t < VEER_ARM_TASK_COUNT && rc == 0; t++) {
+            veer_error err = {0};
+            if ((rc = bootstrap_task(&fb, &p, &veer_arm_tasks[t], veer_arm_eval_starts,
+                                     VEER_ARM_EVAL_START_COUNT, &e, o.center, o.bootstrap, jb[t],
+                                     &err)) != 0)
+                fprintf(stderr, "veer-arm-fb-eval: --bootstrap: %s: %s (%s): %s\n",
+                        veer_arm_tasks[t].name, veer_errname(rc), err.field, err.message);
+        }
+        if (rc == 0)
+            summarise_bootstrap(&bl, o.bootstrap, jb, &bs);
+    }
     if (rc == 0) {
         double mean = sum / VEER_ARM_TASK_COUNT;
-        if (!o.quiet)
+        const boot_summary *bsp = o.bootstrap > 0 ? &bs : NULL;
+        if (!o.quiet) {
             print_table(o.bundle, query_ms, &bl, res, mean, sum_goal / VEER_ARM_TASK_COUNT);
+            if (bsp)
+                print_bootstrap(bsp, res, &bl);
+        }
         if (o.json && write_json(o.json, &o, &bl, query_ms, res, fb.z_dim, mean,
-                                 sum_goal / VEER_ARM_TASK_COUNT) != 0)
+                                 sum_goal / VEER_ARM_TASK_COUNT, bsp) != 0)
             rc = -1;
     }
+    veer__free(jb);
     veer__free(res);
     veer_demo_fb_policy_free(&fb);
     veer_bundle_close(b);

@@ -156,6 +156,43 @@ def test_fb_evaluation_numbers_come_from_the_served_policy(tmp_path):
         v.stop()
 
 
+def test_bootstrap_spread_is_the_percentiles_of_its_resamples(tmp_path):
+    """--bootstrap's medians and 10-90 % ranges against NumPy's percentile (linear interpolation,
+    NumPy's default) of the per-resample scores it writes; the resamples are draws with
+    replacement (Efron 1979), so with more than one they do not all give one score."""
+    base = tmp_path / "baselines.json"
+    r = subprocess.run(
+        [os.path.join(BIN, "veer-arm-eval-baselines"), "--decisions", "25", "--random-repeats",
+         "1", "--population", "12", "--elites", "3", "--iterations", "1", "--horizon", "3",
+         "--knot-every", "1", "--json", str(base), "--quiet"],
+        capture_output=True, text=True, timeout=300)
+    assert r.returncode == 0, r.stderr
+    out = tmp_path / "fb.json"
+    r = subprocess.run(
+        [os.path.join(BIN, "veer-arm-fb-eval"), "--bundle", BUNDLE, "--baselines", str(base),
+         "--bootstrap", "5", "--json", str(out)], capture_output=True, text=True, timeout=300)
+    assert r.returncode == 0, r.stderr
+    assert "bootstrap resamples" in r.stdout
+    res = json.loads(out.read_text())
+    per_task = []
+    for row in res["tasks"]:
+        scores = np.array(row["bootstrap_scores"])
+        assert scores.shape == (5,)
+        p50, p10, p90 = np.percentile(scores, [50, 10, 90])
+        assert row["bootstrap_score_median"] == pytest.approx(p50, abs=1e-9)
+        assert row["bootstrap_score_p10"] == pytest.approx(p10, abs=1e-9)
+        assert row["bootstrap_score_p90"] == pytest.approx(p90, abs=1e-9)
+        per_task.append(scores)
+    means = np.mean(per_task, axis=0)
+    boot = res["bootstrap"]
+    assert boot["resamples"] == 5
+    p50, p10, p90 = np.percentile(means, [50, 10, 90])
+    assert boot["mean_score_median"] == pytest.approx(p50, abs=1e-9)
+    assert boot["mean_score_p10"] == pytest.approx(p10, abs=1e-9)
+    assert boot["mean_score_p90"] == pytest.approx(p90, abs=1e-9)
+    assert np.ptp(np.concatenate(per_task)) > 0.0
+
+
 def test_bad_inputs_get_clear_refusals(tmp_path):
     """Each tool refuses a bad flag or file with a message naming it (common practice)."""
     r = subprocess.run([os.path.join(BIN, "veer-arm-demo"), "--bundle", BUNDLE, "--act",
@@ -180,3 +217,8 @@ def test_bad_inputs_get_clear_refusals(tmp_path):
                         "--baselines", str(other), "--query-ms", "50"],
                        capture_output=True, text=True, timeout=30)
     assert r.returncode == 2 and "--query-ms" in r.stderr
+    for bad in ("-1", "201", "abc", ""):
+        r = subprocess.run([os.path.join(BIN, "veer-arm-fb-eval"), "--bundle", BUNDLE,
+                            "--baselines", shipped, "--bootstrap", bad],
+                           capture_output=True, text=True, timeout=30)
+        assert r.returncode == 2 and "--bootstrap" in r.stderr, (bad, r.stderr)
