@@ -7,7 +7,8 @@
 #   3. the held-out evaluation (veer-arm-fb-eval --select: the task suite from start states that
 #      the reported evaluation does not use) picks the best chunk's bundle;
 #   4. copies it, its training curve and the selection scores here;
-#   5. runs the baselines and the reported evaluation (evaluation.md, evaluation.json).
+#   5. runs the baselines and the reported evaluation, with a 50-resample bootstrap of the reward
+#      samples (evaluation.md, evaluation.json).
 # Usage: clients/demo/model/make-model.sh [BUILD_DIR] [WORK_DIR]
 # Training takes under 30 minutes on 2 shared cores (TRAIN_BUDGET_S, 1770 s by default: no chunk
 # starts that would end later); the baselines about 10 minutes more. The shipped model came from
@@ -72,5 +73,5 @@ cp select.txt "$here/selection.txt"
 # five evaluation starts (about 10 minutes on 2 shared cores), then the shipped model.
 "$bin/veer-arm-eval-baselines" --json baselines.json --quiet
 cp baselines.json "$here/baselines.json"
-(cd "$here" && "$bin/veer-arm-fb-eval" --bundle parcel-arm.veer --baselines baselines.json \
+(cd "$here" && "$bin/veer-arm-fb-eval" --bundle parcel-arm.veer --baselines baselines.json --bootstrap 50 \
     --json evaluation.json) | tee "$here/evaluation.md"
