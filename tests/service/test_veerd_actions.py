@@ -175,7 +175,9 @@ def test_controller_sees_every_switch_whole(bundle, start):
     t0 = time.perf_counter()
     t_sup.start()
     seq = 0
-    while time.perf_counter() - t0 < 2.0 or not stop.is_set():
+    # 2,000 requests on a 1 ms schedule (2 s), then on while the supervisor is still switching.
+    # Counted, not timed: a host stall near the end must not cut the run short of 2,000.
+    while seq < 2000 or not stop.is_set():
         if time.perf_counter() - t0 > 10.0:
             break
         target = t0 + seq * period
@@ -194,7 +196,6 @@ def test_controller_sees_every_switch_whole(bundle, start):
         if sock.poll(100):
             r = harness.wire.Reply.FromString(sock.recv())
             replies[r.id] = (r, requested[0])
-    assert len(sent) >= 2000
     assert len(replies) == len(sent), f"{len(sent) - len(replies)} replies missing"
     assert len(epoch_task) == 101
     last = 0
