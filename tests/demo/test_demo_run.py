@@ -108,22 +108,29 @@ def keep_high_reward(states):
     return np.clip((states[:, 7] + 0.65) / 1.30, 0.0, 1.0)
 
 
-def test_fb_evaluation_numbers_come_from_the_served_policy(tmp_path):
-    from veer.bundle import read_bundle
-    from veer.client import Client
-
+def quick_fb_eval(tmp_path, decisions, *extra):
+    """Cheap baselines (a tiny planner) for `decisions` steps, then veer-arm-fb-eval on the shipped
+    bundle with `extra` flags; returns its completed process and the path of its JSON."""
     base = tmp_path / "baselines.json"
     r = subprocess.run(
-        [os.path.join(BIN, "veer-arm-eval-baselines"), "--decisions", "5", "--random-repeats",
-         "1", "--population", "12", "--elites", "3", "--iterations", "1", "--horizon", "3",
-         "--knot-every", "1", "--json", str(base), "--quiet"],
+        [os.path.join(BIN, "veer-arm-eval-baselines"), "--decisions", str(decisions),
+         "--random-repeats", "1", "--population", "12", "--elites", "3", "--iterations", "1",
+         "--horizon", "3", "--knot-every", "1", "--json", str(base), "--quiet"],
         capture_output=True, text=True, timeout=300)
     assert r.returncode == 0, r.stderr
     out = tmp_path / "fb.json"
     r = subprocess.run(
         [os.path.join(BIN, "veer-arm-fb-eval"), "--bundle", BUNDLE, "--baselines", str(base),
-         "--json", str(out)], capture_output=True, text=True, timeout=300)
+         "--json", str(out), *extra], capture_output=True, text=True, timeout=300)
     assert r.returncode == 0, r.stderr
+    return r, out
+
+
+def test_fb_evaluation_numbers_come_from_the_served_policy(tmp_path):
+    from veer.bundle import read_bundle
+    from veer.client import Client
+
+    r, out = quick_fb_eval(tmp_path, 5)
     assert "| keep_high |" in r.stdout and "**mean**" in r.stdout
     res = json.loads(out.read_text())
     row = next(t for t in res["tasks"] if t["task"] == "keep_high")
@@ -160,18 +167,7 @@ def test_bootstrap_spread_is_the_percentiles_of_its_resamples(tmp_path):
     """--bootstrap's medians and 10-90 % ranges against NumPy's percentile (linear interpolation,
     NumPy's default) of the per-resample scores it writes; the resamples are draws with
     replacement (Efron 1979), so with more than one they do not all give one score."""
-    base = tmp_path / "baselines.json"
-    r = subprocess.run(
-        [os.path.join(BIN, "veer-arm-eval-baselines"), "--decisions", "25", "--random-repeats",
-         "1", "--population", "12", "--elites", "3", "--iterations", "1", "--horizon", "3",
-         "--knot-every", "1", "--json", str(base), "--quiet"],
-        capture_output=True, text=True, timeout=300)
-    assert r.returncode == 0, r.stderr
-    out = tmp_path / "fb.json"
-    r = subprocess.run(
-        [os.path.join(BIN, "veer-arm-fb-eval"), "--bundle", BUNDLE, "--baselines", str(base),
-         "--bootstrap", "5", "--json", str(out)], capture_output=True, text=True, timeout=300)
-    assert r.returncode == 0, r.stderr
+    r, out = quick_fb_eval(tmp_path, 25, "--bootstrap", "5")
     assert "bootstrap resamples" in r.stdout
     res = json.loads(out.read_text())
     per_task = []
