@@ -196,6 +196,7 @@ def test_controller_sees_every_switch_whole(bundle, start):
         if sock.poll(100):
             r = harness.wire.Reply.FromString(sock.recv())
             replies[r.id] = (r, requested[0])
+    assert len(sent) >= 2000, "the 10 s bound ended the run before 2,000 requests were sent"
     assert len(replies) == len(sent), f"{len(sent) - len(replies)} replies missing"
     assert len(epoch_task) == 101
     last = 0
