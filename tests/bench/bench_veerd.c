@@ -7,7 +7,8 @@
  *   2. closed loop: one DEALER, request -> reply, against the echo and against veerd (with the
  *      time veerd reports for itself), and, as a diagnostic, against the echo kept busy for
  *      the inference p50 before each reply;
- *   3. paced: 4 controllers at 1 kHz, deadline 1 ms, against the echo and against veerd.
+ *   3. paced: 4 controllers at 1 kHz, deadline 1 ms, against the echo and against veerd;
+ *      their ticks in phase (default) or spread over the period (--stagger).
  *      Latency counts from the scheduled send time, not the actual one, so a late loop cannot
  *      hide a slow reply (coordinated omission); a reply later than 1 ms after its schedule, or
  *      one veerd flags with VEER_ACT_DEADLINE, is a miss. The loop's own lateness is printed;
@@ -16,8 +17,11 @@
  *   p50 <= echo p50 + 1.2 x inference p50;  p99.9 <= 1.5 x echo p99.9 + inference p99.9;
  *   paced miss rate <= 1.5 x the echo's miss rate at the same pacing.
  * No assertion: it prints, and exits 0. Usage:
- *   bench_veerd VEERD BUNDLE [BUNDLE...] [--seconds S] [--veerd-arg ARG]...
- * (S: paced duration, default 30; each ARG is passed to veerd, e.g. --deadline-percentile=90) */
+ *   bench_veerd VEERD BUNDLE [BUNDLE...] [--seconds S] [--spin-pacing] [--stagger]
+ *               [--veerd-arg ARG]...
+ * S: paced duration, default 30; each ARG is passed to veerd, e.g. --deadline-percentile=90;
+ * --spin-pacing: the controllers sleep to 50 us before each tick and spin (the default is an
+ * absolute sleep); --stagger: their ticks spread over the period (the default is in phase). */
 #include <errno.h>
 #include <inttypes.h>
 #include <pthread.h>
@@ -25,6 +29,7 @@
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
+#include <sys/prctl.h>
 #include <sys/wait.h>
 #include <time.h>
 #include <unistd.h>
@@ -36,6 +41,9 @@
 #include "veer_wire.pb-c.h"
 
 #define CONTROLLERS 4
+/* A send this late means the controller itself was held off (a host stall hits client and
+ * server alike); the count of such misses tells host stalls from slow replies. */
+#define LATE_SEND_NS 200000ull
 #define CLOSED_N 20000
 #define WINDOW 32
 #define DEADLINE_NS 1000000ull
@@ -45,10 +53,10 @@ static const char *veerd_extra[8]; /* --veerd-arg values, passed on to veerd */
 static int veerd_extra_n;
 
 typedef struct target {
-    const char *act;           /* endpoint */
-    size_t req_len;            /* bytes of one act request */
+    const char *act; /* endpoint */
+    size_t req_len;  /* bytes of one act request */
     uint8_t req[4096];
-    Veer__Wire__Request *q;    /* the request, for repacking with another id */
+    Veer__Wire__Request *q; /* the request, for repacking with another id */
 } target;
 
 /* The id of a Request or Reply from its first bytes: field 1 (protocol, varint 1) then field
@@ -78,7 +86,10 @@ typedef struct echo {
 /* The echo runs in its own process, like veerd, so the floor pays the same cross-process
  * wake-ups a real service does. SIGTERM ends it. */
 static volatile sig_atomic_t echo_stop;
-static void on_echo_term(int sig) { echo_stop = 1; }
+static void on_echo_term(int sig)
+{
+    echo_stop = 1;
+}
 
 static void *echo_main(void *arg)
 {
@@ -141,7 +152,10 @@ static void *dealer(void *ctx, const char *endpoint)
     return s;
 }
 
-static size_t pack_request(Veer__Wire__Request *q, uint8_t *buf) { return veer__wire__request__pack(q, buf); }
+static size_t pack_request(Veer__Wire__Request *q, uint8_t *buf)
+{
+    return veer__wire__request__pack(q, buf);
+}
 
 /* Sends `q` on `s` and returns the unpacked Reply (heap), or NULL after 10 s. */
 static Veer__Wire__Reply *call(void *s, Veer__Wire__Request *q)
@@ -170,8 +184,8 @@ static void print_summary(const char *what, const veer_hist *h)
 {
     veer_hist_summary s;
     veer_hist_summarize(h, &s);
-    printf("  %-34s n=%-7" PRIu64 " p50 %7.1f us  p99 %7.1f us  p99.9 %7.1f us  max %8.1f us\n", what, s.count,
-           s.p50 / 1e3, s.p99 / 1e3, s.p999 / 1e3, s.max / 1e3);
+    printf("  %-34s n=%-7" PRIu64 " p50 %7.1f us  p99 %7.1f us  p99.9 %7.1f us  max %8.1f us\n",
+           what, s.count, s.p50 / 1e3, s.p99 / 1e3, s.p999 / 1e3, s.max / 1e3);
 }
 
 static uint64_t pct(const veer_hist *h, double p)
@@ -181,7 +195,7 @@ static uint64_t pct(const veer_hist *h, double p)
     return v;
 }
 
-/* ---- closed loop ------------------------------------------------------------------------------ */
+/* ---- closed loop ----------------------------------------------------------------------------- */
 
 /* `server`, when not NULL, also records the time veerd says it spent (the reply's server_us,
  * from dequeue to send): the round trip less that is transport and wake-ups. */
@@ -207,7 +221,7 @@ static void closed_loop(void *ctx, const target *t, veer_hist *h, veer_hist *ser
     zmq_close(s);
 }
 
-/* ---- paced controllers ------------------------------------------------------------------------ */
+/* ---- paced controllers ----------------------------------------------------------------------- */
 
 typedef struct paced {
     void *ctx;
@@ -215,12 +229,25 @@ typedef struct paced {
     int check_flags; /* veerd: read the reply's flags */
     veer_hist *latency, *lateness;
     uint64_t sent, misses, flagged, lost;
+    uint64_t late_sends; /* misses whose send left more than LATE_SEND_NS after its tick */
+    uint64_t start_ns;   /* the first tick; run_paced sets it */
     pthread_t th;
 } paced;
 
+static int spin_pacing; /* --spin-pacing: sleep to 50 us before the tick, then spin */
+static int stagger;     /* --stagger: controllers' ticks spread over the period, not in phase */
+
 static void sleep_until(uint64_t t_ns)
 {
-    /* Sleep to 50 us before, then spin: a 1 kHz loop cannot trust the scheduler's wake-up. */
+    if (!spin_pacing) {
+        /* An absolute sleep on CLOCK_MONOTONIC, as a real-time loop waits for its next period
+         * (the method of the rt-tests' cyclictest), with the thread's timer slack at 1 ns
+         * (paced_main) so the kernel does not defer the wake-up by its default 50 us. */
+        struct timespec ts = {(time_t)(t_ns / 1000000000u), (long)(t_ns % 1000000000u)};
+        while (clock_nanosleep(CLOCK_MONOTONIC, TIMER_ABSTIME, &ts, NULL) == EINTR) {
+        }
+        return;
+    }
     for (;;) {
         uint64_t now = veer__now_ns();
         if (now >= t_ns)
@@ -235,6 +262,7 @@ static void sleep_until(uint64_t t_ns)
 static void *paced_main(void *arg)
 {
     paced *p = arg;
+    prctl(PR_SET_TIMERSLACK, 1UL, 0UL, 0UL, 0UL);
     void *s = dealer(p->ctx, p->t->act);
     uint8_t buf[4096], req[4096];
     Veer__Wire__Request q = *p->t->q;
@@ -244,7 +272,7 @@ static void *paced_main(void *arg)
     zmq_send(s, p->t->req, p->t->req_len, 0);
     zmq_recv(s, buf, sizeof buf, 0);
     uint64_t n = (uint64_t)(seconds_paced * 1000.0);
-    uint64_t start = veer__now_ns() + 10000000;
+    uint64_t start = p->start_ns;
     zmq_pollitem_t it = {s, 0, ZMQ_POLLIN, 0};
     for (uint64_t k = 0; k < n; k++) {
         uint64_t scheduled = start + k * 1000000ull;
@@ -275,7 +303,8 @@ static void *paced_main(void *arg)
             int miss = lat > DEADLINE_NS;
             if (p->check_flags) {
                 Veer__Wire__Reply *r = veer__wire__reply__unpack(NULL, (size_t)rlen, buf);
-                if (r != NULL && r->body_case == VEER__WIRE__REPLY__BODY_ACT && (r->act->flags & VEER_ACT_DEADLINE)) {
+                if (r != NULL && r->body_case == VEER__WIRE__REPLY__BODY_ACT &&
+                    (r->act->flags & VEER_ACT_DEADLINE)) {
                     miss = 1;
                     p->flagged++;
                 }
@@ -283,6 +312,7 @@ static void *paced_main(void *arg)
                     veer__wire__reply__free_unpacked(r, NULL);
             }
             p->misses += miss;
+            p->late_sends += miss && t_send - scheduled > LATE_SEND_NS;
             got = 1;
             break;
         }
@@ -290,6 +320,7 @@ static void *paced_main(void *arg)
             veer_hist_record(p->latency, veer__now_ns() - scheduled);
             p->lost++;
             p->misses++;
+            p->late_sends += t_send - scheduled > LATE_SEND_NS;
         }
     }
     zmq_close(s);
@@ -299,6 +330,7 @@ static void *paced_main(void *arg)
 typedef struct paced_result {
     veer_hist *latency, *lateness;
     uint64_t sent, misses, flagged, lost;
+    uint64_t late_sends; /* misses whose send left more than LATE_SEND_NS after its tick */
 } paced_result;
 
 static void run_paced(void *ctx, const target *t, int check_flags, paced_result *out)
@@ -306,12 +338,18 @@ static void run_paced(void *ctx, const target *t, int check_flags, paced_result 
     paced p[CONTROLLERS];
     veer_hist_create(&out->latency);
     veer_hist_create(&out->lateness);
-    out->sent = out->misses = out->flagged = out->lost = 0;
+    out->sent = out->misses = out->flagged = out->lost = out->late_sends = 0;
+    /* By default every controller ticks at the same instants, as axes driven from one timer do:
+     * the worst case for veerd's one act thread, which answers them one after another. With
+     * --stagger the ticks are spread evenly over the period, as independent controllers
+     * would be. 50 ms leaves time for the threads to connect and warm up. */
+    uint64_t start = veer__now_ns() + 50000000ull;
     for (int i = 0; i < CONTROLLERS; i++) {
         memset(&p[i], 0, sizeof p[i]);
         p[i].ctx = ctx;
         p[i].t = t;
         p[i].check_flags = check_flags;
+        p[i].start_ns = start + (stagger ? (uint64_t)i * 1000000ull / CONTROLLERS : 0);
         veer_hist_create(&p[i].latency);
         veer_hist_create(&p[i].lateness);
         pthread_create(&p[i].th, NULL, paced_main, &p[i]);
@@ -322,6 +360,7 @@ static void run_paced(void *ctx, const target *t, int check_flags, paced_result 
         veer_hist_merge(out->lateness, p[i].lateness);
         out->sent += p[i].sent;
         out->misses += p[i].misses;
+        out->late_sends += p[i].late_sends;
         out->flagged += p[i].flagged;
         out->lost += p[i].lost;
         veer_hist_destroy(p[i].latency);
@@ -329,7 +368,7 @@ static void run_paced(void *ctx, const target *t, int check_flags, paced_result 
     }
 }
 
-/* ---- throughput ------------------------------------------------------------------------------- */
+/* ---- throughput ------------------------------------------------------------------------------ */
 
 typedef struct pump {
     void *ctx;
@@ -376,7 +415,7 @@ static double throughput(void *ctx, const target *t)
     return (double)total / 2.0;
 }
 
-/* ---- veerd -------------------------------------------------------------------------------------- */
+/* ---- veerd ----------------------------------------------------------------------------------- */
 
 static pid_t start_veerd(const char *veerd, const char *bundle, const char *dir, const char *act,
                          const char *admin, const char *events)
@@ -388,8 +427,8 @@ static pid_t start_veerd(const char *veerd, const char *bundle, const char *dir,
         snprintf(log, sizeof log, "%s/veerd.log", dir);
         if (freopen(log, "w", stderr) == NULL)
             _exit(1);
-        const char *argv[24] = {veerd, "--bundle", bundle, "--state-dir", state, "--act", act, "--admin", admin,
-                                "--events", events};
+        const char *argv[24] = {veerd, "--bundle", bundle, "--state-dir", state, "--act",
+                                act,   "--admin",  admin,  "--events",    events};
         int n = 11;
         for (int i = 0; i < veerd_extra_n; i++)
             argv[n++] = veerd_extra[i];
@@ -409,8 +448,9 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
         return 1;
     }
     const veer_model_info *info = veer_bundle_info(b);
-    printf("\n== %s (state %u, z %u, %s) over %s ==\n", info->model_version, info->state_dim, info->z_dim,
-           info->action_kind == VEER_ACTION_CONTINUOUS ? "continuous" : "discrete", transport);
+    printf("\n== %s (state %u, z %u, %s) over %s ==\n", info->model_version, info->state_dim,
+           info->z_dim, info->action_kind == VEER_ACTION_CONTINUOUS ? "continuous" : "discrete",
+           transport);
 
     /* 1. In-process inference with a task made from the reference set. */
     uint32_t n_ref = info->reference_count, sd = info->state_dim;
@@ -535,7 +575,8 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
     pid_t gap_pid = spawn_echo(&eg);
     target te = tv;
     te.act = echo_ep;
-    printf("  request %zu bytes, reply %d bytes; OpenBLAS kernel %s\n", tv.req_len, reply_len, veer_blas_kernel());
+    printf("  request %zu bytes, reply %d bytes; OpenBLAS kernel %s\n", tv.req_len, reply_len,
+           veer_blas_kernel());
 
     /* 3. Closed loops. */
     veer_hist *h_echo, *h_veerd, *h_server, *h_gap;
@@ -559,33 +600,43 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
     paced_result pe, pv;
     run_paced(ctx, &te, 0, &pe);
     run_paced(ctx, &tv, 1, &pv);
-    printf("  paced: %d controllers x 1 kHz x %.0f s, deadline 1 ms, latency from the scheduled send\n", CONTROLLERS,
-           seconds_paced);
+    printf("  paced: %d controllers x 1 kHz x %.0f s, deadline 1 ms, latency from the scheduled "
+           "send\n",
+           CONTROLLERS, seconds_paced);
     print_summary("paced, echo", pe.latency);
     print_summary("paced, veerd", pv.latency);
     print_summary("pacing loop lateness (echo run)", pe.lateness);
     print_summary("pacing loop lateness (veerd run)", pv.lateness);
-    double miss_e = (double)pe.misses / (double)pe.sent, miss_v = (double)pv.misses / (double)pv.sent;
+    double miss_e = (double)pe.misses / (double)pe.sent,
+           miss_v = (double)pv.misses / (double)pv.sent;
     printf("  misses: echo %" PRIu64 "/%" PRIu64 " (%.4f %%), veerd %" PRIu64 "/%" PRIu64
            " (%.4f %%; %" PRIu64 " flagged by veerd, %" PRIu64 " without a reply within 50 ms)\n",
            pe.misses, pe.sent, 100 * miss_e, pv.misses, pv.sent, 100 * miss_v, pv.flagged, pv.lost);
+    printf("  of those misses, sent more than %llu us after their tick (a stalled controller): "
+           "echo %" PRIu64 ", veerd %" PRIu64 "\n",
+           LATE_SEND_NS / 1000, pe.late_sends, pv.late_sends);
 
     /* 5. Throughput. */
     double thr_e = throughput(ctx, &tce), thr_v = throughput(ctx, &tc);
-    printf("  throughput (%d DEALERs x %d in flight): echo %.0f/s, veerd %.0f/s\n", CONTROLLERS, WINDOW, thr_e, thr_v);
+    printf("  throughput (%d DEALERs x %d in flight): echo %.0f/s, veerd %.0f/s\n", CONTROLLERS,
+           WINDOW, thr_e, thr_v);
 
     /* 6. The targets, as ratios to this run's floor. */
     double inf50 = (double)pct(inference, 50), inf999 = (double)pct(inference, 99.9);
     double lim50 = (double)pct(h_echo, 50) + 1.2 * inf50;
     double lim999 = 1.5 * (double)pct(h_echo, 99.9) + inf999;
-    printf("  target p50:   veerd %.1f us vs echo p50 + 1.2 x inference p50 = %.1f us  -> ratio %.2f %s\n",
-           pct(h_veerd, 50) / 1e3, lim50 / 1e3, pct(h_veerd, 50) / lim50, pct(h_veerd, 50) <= lim50 ? "MET" : "NOT MET");
-    printf("  target p99.9: veerd %.1f us vs 1.5 x echo p99.9 + inference p99.9 = %.1f us  -> ratio %.2f %s\n",
+    printf("  target p50:   veerd %.1f us vs echo p50 + 1.2 x inference p50 = %.1f us  -> ratio "
+           "%.2f %s\n",
+           pct(h_veerd, 50) / 1e3, lim50 / 1e3, pct(h_veerd, 50) / lim50,
+           pct(h_veerd, 50) <= lim50 ? "MET" : "NOT MET");
+    printf("  target p99.9: veerd %.1f us vs 1.5 x echo p99.9 + inference p99.9 = %.1f us  -> "
+           "ratio %.2f %s\n",
            pct(h_veerd, 99.9) / 1e3, lim999 / 1e3, pct(h_veerd, 99.9) / lim999,
            pct(h_veerd, 99.9) <= lim999 ? "MET" : "NOT MET");
     if (pe.misses > 0)
-        printf("  target misses: veerd %.4f %% vs 1.5 x echo %.4f %% -> ratio %.2f %s\n", 100 * miss_v,
-               150 * miss_e, miss_v / (1.5 * miss_e), miss_v <= 1.5 * miss_e ? "MET" : "NOT MET");
+        printf("  target misses: veerd %.4f %% vs 1.5 x echo %.4f %% -> ratio %.2f %s\n",
+               100 * miss_v, 150 * miss_e, miss_v / (1.5 * miss_e),
+               miss_v <= 1.5 * miss_e ? "MET" : "NOT MET");
     else
         printf("  target misses: the echo missed none; veerd missed %" PRIu64 " %s\n", pv.misses,
                pv.misses == 0 ? "(MET)" : "(NOT MET: no floor to scale)");
@@ -622,7 +673,8 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
 int main(int argc, char **argv)
 {
     if (argc < 3) {
-        fprintf(stderr, "usage: bench_veerd VEERD BUNDLE [BUNDLE...] [--seconds S] [--veerd-arg ARG]...\n");
+        fprintf(stderr, "usage: bench_veerd VEERD BUNDLE [BUNDLE...] [--seconds S] [--spin-pacing] "
+                        "[--stagger] [--veerd-arg ARG]...\n");
         return 2;
     }
     int nb = 0;
@@ -630,12 +682,22 @@ int main(int argc, char **argv)
     for (int i = 2; i < argc; i++) {
         if (strcmp(argv[i], "--seconds") == 0 && i + 1 < argc)
             seconds_paced = atof(argv[++i]);
+        else if (strcmp(argv[i], "--spin-pacing") == 0)
+            spin_pacing = 1;
+        else if (strcmp(argv[i], "--stagger") == 0)
+            stagger = 1;
         else if (strcmp(argv[i], "--veerd-arg") == 0 && i + 1 < argc && veerd_extra_n < 8)
             veerd_extra[veerd_extra_n++] = argv[++i];
         else if (nb < 16)
             bundles[nb++] = argv[i];
     }
-    printf("bench_veerd: %ld online CPUs; every figure below is from this run\n", sysconf(_SC_NPROCESSORS_ONLN));
+    printf("bench_veerd: %ld online CPUs; every figure below is from this run\n",
+           sysconf(_SC_NPROCESSORS_ONLN));
+    printf("  controllers' ticks: %s\n", stagger ? "spread evenly over the 1 ms period (--stagger)"
+                                                 : "in phase (worst case for one act thread)");
+    printf("  pacing: %s\n",
+           spin_pacing ? "sleep to 50 us before each tick, then spin"
+                       : "absolute sleep to each tick (clock_nanosleep, 1 ns timer slack)");
     for (int i = 0; i < veerd_extra_n; i++)
         printf("  veerd %s\n", veerd_extra[i]);
     for (int i = 0; i < nb; i++)
