@@ -60,7 +60,7 @@ trap cleanup EXIT
 # A controller and its service run at a real-time priority on a real machine; where this shell may
 # grant one (chrt), veerd gets it too, so other work on the machine does not delay its replies.
 # The whole process, not only its act and socket threads (--act-priority): on one quiet host the
-# demo missed 0 of 70,000 deadlines this way against 15 of 175,000 with --act-priority 10 alone.
+# demo missed 3 of 105,000 deadlines this way against 15 of 175,000 with --act-priority 10 alone.
 # The demo puts every task before the arm starts, so no task encoding runs at that priority
 # while it moves; a real deployment that puts tasks while running should prefer --act-priority
 # (docs/operators.md). chrt replaces itself with veerd, so $! is veerd's pid.
