@@ -19,12 +19,14 @@ void veer__k_linear(size_t n, uint32_t in, uint32_t out, const float *x, const f
             memcpy(y + r * out, b, (size_t)out * sizeof *b);
         beta = 1.0f;
     }
-    if (n == 1)
-        cblas_sgemv(CblasRowMajor, CblasNoTrans, (int)out, (int)in, 1.0f, w, (int)in, x, 1, beta, y,
-                    1);
-    else
+    if (n <= VEER__K_GEMV_ROWS_MAX) {
+        for (size_t r = 0; r < n; r++)
+            cblas_sgemv(CblasRowMajor, CblasNoTrans, (int)out, (int)in, 1.0f, w, (int)in,
+                        x + r * in, 1, beta, y + r * out, 1);
+    } else {
         cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasTrans, (int)n, (int)out, (int)in, 1.0f, x,
                     (int)in, w, (int)in, beta, y, (int)out);
+    }
 }
 
 void veer__k_relu(size_t count, float *x)

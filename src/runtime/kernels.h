@@ -8,6 +8,16 @@
 #include <stddef.h>
 #include <stdint.h>
 
+/* Up to this many rows, veer__k_linear runs one sgemv per row instead of one sgemm. OpenBLAS's
+ * sgemm first copies both operands into packed panels, which for a few rows costs more than the
+ * multiplication: single-threaded on the development host (OpenBLAS 0.3.21, Zen kernel), a
+ * 1024 x 1024 layer took 790 us by sgemm for 2 rows against 231 us by two sgemv, 885 against
+ * 744 us for 6 rows, and sgemm won from 8 rows (823 against 1007 us); a 256 x 256 layer 25
+ * against 8 us for 2 rows. OpenBLAS has a direct small-matrix sgemm only for some CPUs
+ * (OpenMathLib/OpenBLAS pull request 1914). Discrete acting evaluates action_count rows per
+ * state, and a batch of a few acts a few rows, so both land here. */
+#define VEER__K_GEMV_ROWS_MAX 6
+
 /* y = x Wᵀ + b for n rows: x is n x in, W is out x in (row-major, as PyTorch stores it),
  * b has out values or is NULL (no bias), y is n x out. x and y must not overlap. */
 void veer__k_linear(size_t n, uint32_t in, uint32_t out, const float *x, const float *w,

@@ -199,6 +199,7 @@ static size_t weights_bytes(const Veer__Bundle__Model *m)
 typedef struct floor_op {
     const float *w;
     int rows, in, out;
+    int per_row; /* 1: one sgemv per row; 0: one sgemm (chosen by timing both, plan_finish) */
 } floor_op;
 
 typedef struct floor_plan {
@@ -244,6 +245,18 @@ static void plan_network(floor_plan *p, const Veer__Bundle__Network *net, int ac
     plan_layers(p, net->head, net->n_head, any_action ? action_rows : state_rows);
 }
 
+static void floor_op_run(const floor_op *op, const float *x, float *y)
+{
+    if (op->per_row) {
+        for (int r = 0; r < op->rows; r++)
+            cblas_sgemv(CblasRowMajor, CblasNoTrans, op->out, op->in, 1.0f, op->w, op->in,
+                        x + (size_t)r * op->in, 1, 0.0f, y + (size_t)r * op->out, 1);
+    } else {
+        cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasTrans, op->rows, op->out, op->in, 1.0f, x,
+                    op->in, op->w, op->in, 0.0f, y, op->out);
+    }
+}
+
 static void plan_finish(floor_plan *p)
 {
     size_t cap = 1;
@@ -256,6 +269,26 @@ static void plan_finish(floor_plan *p)
     p->cap = cap;
     p->x = random_floats(cap);
     p->y = random_floats(cap);
+    /* A few rows can go either way: OpenBLAS's sgemm packs its operands first, which one sgemv
+     * per row avoids (src/runtime/kernels.h). The floor takes whichever is faster here, timed
+     * now, so that it stays the best the bare library does whatever the runtime chose. */
+    for (int i = 0; i < p->n_ops; i++) {
+        floor_op *op = &p->ops[i];
+        if (op->rows == 1) {
+            op->per_row = 1;
+            continue;
+        }
+        uint64_t best[2] = {UINT64_MAX, UINT64_MAX};
+        for (int rep = 0; rep < 40; rep++)
+            for (int v = 0; v < 2; v++) {
+                op->per_row = v;
+                uint64_t t0 = veer__now_ns();
+                floor_op_run(op, p->x, p->y);
+                uint64_t t = veer__now_ns() - t0;
+                best[v] = t < best[v] ? t : best[v];
+            }
+        op->per_row = best[1] < best[0];
+    }
 }
 
 static void plan_free(floor_plan *p)
@@ -269,13 +302,7 @@ static void floor_run(floor_plan *p)
 {
     float *x = p->x, *y = p->y;
     for (int i = 0; i < p->n_ops; i++) {
-        const floor_op *op = &p->ops[i];
-        if (op->rows == 1)
-            cblas_sgemv(CblasRowMajor, CblasNoTrans, op->out, op->in, 1.0f, op->w, op->in, x, 1,
-                        0.0f, y, 1);
-        else
-            cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasTrans, op->rows, op->out, op->in, 1.0f, x,
-                        op->in, op->w, op->in, 0.0f, y, op->out);
+        floor_op_run(&p->ops[i], x, y);
         float *t = x;
         x = y;
         y = t;

@@ -33,7 +33,10 @@ static void test_linear_single_and_batch(void **state)
     (void)state;
     fx_srand(1);
     const uint32_t in = 37, out = 19; /* odd sizes reach OpenBLAS's edge code */
-    for (size_t n = 1; n <= 9; n += 4) {
+    /* Row counts on both sides of the per-row sgemv / sgemm switch (kernels.h). */
+    const size_t rows[] = {1, 2, VEER__K_GEMV_ROWS_MAX, VEER__K_GEMV_ROWS_MAX + 1, 9};
+    for (size_t k = 0; k < sizeof rows / sizeof rows[0]; k++) {
+        size_t n = rows[k];
         for (int with_bias = 0; with_bias <= 1; with_bias++) {
             float *x = fx_random(n * in, 2.0f), *w = fx_random((size_t)out * in, 1.0f);
             float *b = with_bias ? fx_random(out, 1.0f) : NULL;
