@@ -14,8 +14,8 @@
  * 1024 x 1024 layer took 790 us by sgemm for 2 rows against 231 us by two sgemv, 885 against
  * 744 us for 6 rows, and sgemm won from 8 rows (823 against 1007 us); a 256 x 256 layer 25
  * against 8 us for 2 rows. Only narrow layers lose a little (62 x 256: 7.6 against 6.9 us for
- * 6 rows), where both cost next to nothing. OpenBLAS has a direct small-matrix sgemm only for some CPUs
- * (OpenMathLib/OpenBLAS pull request 1914). Discrete acting evaluates action_count rows per
+ * 6 rows), where both cost next to nothing. OpenBLAS has a direct small-matrix sgemm only for some
+ * CPUs (OpenMathLib/OpenBLAS pull request 1914). Discrete acting evaluates action_count rows per
  * state, and a batch of a few acts a few rows, so both land here. */
 #define VEER__K_GEMV_ROWS_MAX 6
 
