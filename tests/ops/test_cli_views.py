@@ -87,14 +87,19 @@ def test_top_in_tmux_shows_the_expected_fields(continuous_bundle, start, tmp_pat
     subprocess.run(["tmux", "-L", sock, "new-session", "-d", "-s", session, "-x", "160", "-y", "70", cmd],
                    check=True, timeout=20)
     try:
-        screen = ""
-        end = time.monotonic() + 15
+        # A capture can land while tmux is still drawing a frame (seen in CI: a feature row cut
+        # before its LEVEL column), so wait for two captures in a row that agree once the
+        # header's clock is blanked: nothing moves after drive() returns, so that is a whole frame.
+        screen, last = "", None
+        end = time.monotonic() + 20
         while time.monotonic() < end:
-            time.sleep(0.5)
+            time.sleep(0.4)
             screen = subprocess.run(["tmux", "-L", sock, "capture-pane", "-p", "-e", "-t", session],
                                     capture_output=True, text=True, timeout=10).stdout
-            if "FEATURE" in screen:
+            still = re.sub(r"\b\d\d:\d\d:\d\d\b", "", screen)
+            if "FEATURE" in screen and still == last:
                 break
+            last = still
     finally:
         subprocess.run(["tmux", "-L", sock, "kill-server"], timeout=10)
     plain = re.sub(r"\x1b\[[0-9;]*[A-Za-z]", "", screen)
