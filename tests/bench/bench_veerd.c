@@ -8,7 +8,10 @@
  *      time veerd reports for itself), and, as a diagnostic, against the echo kept busy for
  *      the inference p50 before each reply;
  *   3. paced: 4 controllers at 1 kHz, deadline 1 ms, against the echo and against veerd;
- *      their ticks in phase (default) or spread over the period (--stagger).
+ *      their ticks in phase (default) or spread over the period (--stagger). The S seconds
+ *      of each are cut into R rounds that alternate echo and veerd (E V V E E V ...), so a
+ *      host stall of the shared machine lands on the floor as often as on veerd: run one
+ *      after the other, a single 60 ms stall (240 misses) decided the miss ratio.
  *      Latency counts from the scheduled send time, not the actual one, so a late loop cannot
  *      hide a slow reply (coordinated omission); a reply later than 1 ms after its schedule, or
  *      one veerd flags with VEER_ACT_DEADLINE, is a miss. The loop's own lateness is printed;
@@ -18,8 +21,9 @@
  *   paced miss rate <= 1.5 x the echo's miss rate at the same pacing.
  * No assertion: it prints, and exits 0. Usage:
  *   bench_veerd VEERD BUNDLE [BUNDLE...] [--seconds S] [--spin-pacing] [--stagger]
- *               [--veerd-arg ARG]...
- * S: paced duration, default 30; each ARG is passed to veerd, e.g. --deadline-percentile=90;
+ *               [--rounds R] [--veerd-arg ARG]...
+ * S: paced duration, default 30; R: rounds it is cut into, default 6; each ARG is passed to veerd,
+ * e.g. --deadline-percentile=90;
  * --spin-pacing: the controllers sleep to 50 us before each tick and spin (the default is an
  * absolute sleep); --stagger: their ticks spread over the period (the default is in phase). */
 #include <errno.h>
@@ -49,6 +53,7 @@
 #define DEADLINE_NS 1000000ull
 
 static double seconds_paced = 30.0;
+static int paced_rounds = 6;
 static const char *veerd_extra[8]; /* --veerd-arg values, passed on to veerd */
 static int veerd_extra_n;
 
@@ -231,6 +236,7 @@ typedef struct paced {
     uint64_t sent, misses, flagged, lost;
     uint64_t late_sends; /* misses whose send left more than LATE_SEND_NS after its tick */
     uint64_t start_ns;   /* the first tick; run_paced sets it */
+    uint64_t ticks;      /* ticks to send; run_paced sets it */
     pthread_t th;
 } paced;
 
@@ -271,7 +277,7 @@ static void *paced_main(void *arg)
     /* Warm up the connection before the clock starts. */
     zmq_send(s, p->t->req, p->t->req_len, 0);
     zmq_recv(s, buf, sizeof buf, 0);
-    uint64_t n = (uint64_t)(seconds_paced * 1000.0);
+    uint64_t n = p->ticks;
     uint64_t start = p->start_ns;
     zmq_pollitem_t it = {s, 0, ZMQ_POLLIN, 0};
     for (uint64_t k = 0; k < n; k++) {
@@ -333,12 +339,18 @@ typedef struct paced_result {
     uint64_t late_sends; /* misses whose send left more than LATE_SEND_NS after its tick */
 } paced_result;
 
-static void run_paced(void *ctx, const target *t, int check_flags, paced_result *out)
+static void paced_result_init(paced_result *out)
 {
-    paced p[CONTROLLERS];
     veer_hist_create(&out->latency);
     veer_hist_create(&out->lateness);
     out->sent = out->misses = out->flagged = out->lost = out->late_sends = 0;
+}
+
+/* One round: the controllers send `ticks` requests each; adds to `out`. */
+static void run_paced(void *ctx, const target *t, int check_flags, uint64_t ticks,
+                      paced_result *out)
+{
+    paced p[CONTROLLERS];
     /* By default every controller ticks at the same instants, as axes driven from one timer do:
      * the worst case for veerd's one act thread, which answers them one after another. With
      * --stagger the ticks are spread evenly over the period, as independent controllers
@@ -350,6 +362,7 @@ static void run_paced(void *ctx, const target *t, int check_flags, paced_result 
         p[i].t = t;
         p[i].check_flags = check_flags;
         p[i].start_ns = start + (stagger ? (uint64_t)i * 1000000ull / CONTROLLERS : 0);
+        p[i].ticks = ticks;
         veer_hist_create(&p[i].latency);
         veer_hist_create(&p[i].lateness);
         pthread_create(&p[i].th, NULL, paced_main, &p[i]);
@@ -598,11 +611,29 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
 
     /* 4. Paced. */
     paced_result pe, pv;
-    run_paced(ctx, &te, 0, &pe);
-    run_paced(ctx, &tv, 1, &pv);
-    printf("  paced: %d controllers x 1 kHz x %.0f s, deadline 1 ms, latency from the scheduled "
-           "send\n",
-           CONTROLLERS, seconds_paced);
+    paced_result_init(&pe);
+    paced_result_init(&pv);
+    uint64_t ticks = (uint64_t)(seconds_paced * 1000.0 / paced_rounds);
+    char per_round[512];
+    size_t used = 0;
+    for (int round = 0; round < paced_rounds; round++) {
+        uint64_t me = pe.misses, mv = pv.misses;
+        /* ABBA order: each side goes first in half the rounds. */
+        for (int k = 0; k < 2; k++) {
+            if ((k == 0) == (round % 2 == 0))
+                run_paced(ctx, &te, 0, ticks, &pe);
+            else
+                run_paced(ctx, &tv, 1, ticks, &pv);
+        }
+        used += (size_t)snprintf(per_round + used, sizeof per_round - used, " %" PRIu64 "/%" PRIu64,
+                                 pe.misses - me, pv.misses - mv);
+        if (used >= sizeof per_round)
+            used = sizeof per_round - 1;
+    }
+    printf("  paced: %d controllers x 1 kHz x %.0f s each, deadline 1 ms, latency from the "
+           "scheduled send; %d alternating rounds of %.1f s\n",
+           CONTROLLERS, seconds_paced, paced_rounds, (double)ticks / 1000.0);
+    printf("  misses per round (echo/veerd):%s\n", per_round);
     print_summary("paced, echo", pe.latency);
     print_summary("paced, veerd", pv.latency);
     print_summary("pacing loop lateness (echo run)", pe.lateness);
@@ -674,7 +705,7 @@ int main(int argc, char **argv)
 {
     if (argc < 3) {
         fprintf(stderr, "usage: bench_veerd VEERD BUNDLE [BUNDLE...] [--seconds S] [--spin-pacing] "
-                        "[--stagger] [--veerd-arg ARG]...\n");
+                        "[--stagger] [--rounds R] [--veerd-arg ARG]...\n");
         return 2;
     }
     int nb = 0;
@@ -682,6 +713,8 @@ int main(int argc, char **argv)
     for (int i = 2; i < argc; i++) {
         if (strcmp(argv[i], "--seconds") == 0 && i + 1 < argc)
             seconds_paced = atof(argv[++i]);
+        else if (strcmp(argv[i], "--rounds") == 0 && i + 1 < argc)
+            paced_rounds = atoi(argv[++i]);
         else if (strcmp(argv[i], "--spin-pacing") == 0)
             spin_pacing = 1;
         else if (strcmp(argv[i], "--stagger") == 0)
@@ -690,6 +723,10 @@ int main(int argc, char **argv)
             veerd_extra[veerd_extra_n++] = argv[++i];
         else if (nb < 16)
             bundles[nb++] = argv[i];
+    }
+    if (paced_rounds < 1 || paced_rounds > 60 || seconds_paced <= 0) {
+        fprintf(stderr, "bench_veerd: --rounds takes 1 to 60 and --seconds a positive duration\n");
+        return 2;
     }
     printf("bench_veerd: %ld online CPUs; every figure below is from this run\n",
            sysconf(_SC_NPROCESSORS_ONLN));
