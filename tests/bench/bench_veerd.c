@@ -14,7 +14,8 @@
  *      after the other, a single 60 ms stall (240 misses) decided the miss ratio.
  *      Latency counts from the scheduled send time, not the actual one, so a late loop cannot
  *      hide a slow reply (coordinated omission); a reply later than 1 ms after its schedule, or
- *      one veerd flags with VEER_ACT_DEADLINE, is a miss. The loop's own lateness is printed;
+ *      one veerd flags with VEER_ACT_DEADLINE, is a miss. The loop's own lateness is printed,
+ *      and veerd's own time per paced act (server_us), to tell its tail from the sockets';
  *   4. throughput: 4 DEALERs, 32 requests in flight each, replies per second.
  * Then the issue's targets as ratios to the floor of this run:
  *   p50 <= echo p50 + 1.2 x inference p50;  p99.9 <= 1.5 x echo p99.9 + inference p99.9;
@@ -233,6 +234,7 @@ typedef struct paced {
     const target *t;
     int check_flags; /* veerd: read the reply's flags */
     veer_hist *latency, *lateness;
+    veer_hist *server; /* veerd: the reply's server_us, to tell veerd's own tail from the rest */
     uint64_t sent, misses, flagged, lost;
     uint64_t late_sends; /* misses whose send left more than LATE_SEND_NS after its tick */
     uint64_t start_ns;   /* the first tick; run_paced sets it */
@@ -309,10 +311,12 @@ static void *paced_main(void *arg)
             int miss = lat > DEADLINE_NS;
             if (p->check_flags) {
                 Veer__Wire__Reply *r = veer__wire__reply__unpack(NULL, (size_t)rlen, buf);
-                if (r != NULL && r->body_case == VEER__WIRE__REPLY__BODY_ACT &&
-                    (r->act->flags & VEER_ACT_DEADLINE)) {
-                    miss = 1;
-                    p->flagged++;
+                if (r != NULL && r->body_case == VEER__WIRE__REPLY__BODY_ACT) {
+                    veer_hist_record(p->server, (uint64_t)r->act->server_us * 1000u + 1);
+                    if (r->act->flags & VEER_ACT_DEADLINE) {
+                        miss = 1;
+                        p->flagged++;
+                    }
                 }
                 if (r != NULL)
                     veer__wire__reply__free_unpacked(r, NULL);
@@ -334,7 +338,7 @@ static void *paced_main(void *arg)
 }
 
 typedef struct paced_result {
-    veer_hist *latency, *lateness;
+    veer_hist *latency, *lateness, *server;
     uint64_t sent, misses, flagged, lost;
     uint64_t late_sends; /* misses whose send left more than LATE_SEND_NS after its tick */
 } paced_result;
@@ -343,6 +347,7 @@ static void paced_result_init(paced_result *out)
 {
     veer_hist_create(&out->latency);
     veer_hist_create(&out->lateness);
+    veer_hist_create(&out->server);
     out->sent = out->misses = out->flagged = out->lost = out->late_sends = 0;
 }
 
@@ -365,12 +370,14 @@ static void run_paced(void *ctx, const target *t, int check_flags, uint64_t tick
         p[i].ticks = ticks;
         veer_hist_create(&p[i].latency);
         veer_hist_create(&p[i].lateness);
+        veer_hist_create(&p[i].server);
         pthread_create(&p[i].th, NULL, paced_main, &p[i]);
     }
     for (int i = 0; i < CONTROLLERS; i++) {
         pthread_join(p[i].th, NULL);
         veer_hist_merge(out->latency, p[i].latency);
         veer_hist_merge(out->lateness, p[i].lateness);
+        veer_hist_merge(out->server, p[i].server);
         out->sent += p[i].sent;
         out->misses += p[i].misses;
         out->late_sends += p[i].late_sends;
@@ -378,6 +385,7 @@ static void run_paced(void *ctx, const target *t, int check_flags, uint64_t tick
         out->lost += p[i].lost;
         veer_hist_destroy(p[i].latency);
         veer_hist_destroy(p[i].lateness);
+        veer_hist_destroy(p[i].server);
     }
 }
 
@@ -636,6 +644,7 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
     printf("  misses per round (echo/veerd):%s\n", per_round);
     print_summary("paced, echo", pe.latency);
     print_summary("paced, veerd", pv.latency);
+    print_summary("  of which inside veerd (server_us)", pv.server); /* whole microseconds */
     print_summary("pacing loop lateness (echo run)", pe.lateness);
     print_summary("pacing loop lateness (veerd run)", pv.lateness);
     double miss_e = (double)pe.misses / (double)pe.sent,
@@ -688,8 +697,10 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
     veer_hist_destroy(inference);
     veer_hist_destroy(pe.latency);
     veer_hist_destroy(pe.lateness);
+    veer_hist_destroy(pe.server);
     veer_hist_destroy(pv.latency);
     veer_hist_destroy(pv.lateness);
+    veer_hist_destroy(pv.server);
     veer_workspace_destroy(ws);
     veer_bundle_close(b);
     free(z);
