@@ -7,11 +7,12 @@
  *   2. closed loop: one DEALER, request -> reply, against the echo and against veerd (with the
  *      time veerd reports for itself), and, as a diagnostic, against the echo kept busy for
  *      the inference p50 before each reply;
- *   3. paced: 4 controllers at 1 kHz, deadline 1 ms, against the echo and against veerd;
- *      their ticks in phase (default) or spread over the period (--stagger). The S seconds
- *      of each are cut into R rounds that alternate echo and veerd (E V V E E V ...), so a
- *      host stall of the shared machine lands on the floor as often as on veerd: run one
- *      after the other, a single 60 ms stall (240 misses) decided the miss ratio.
+ *   3. paced: 4 controllers at 1 kHz, deadline 1 ms, against the echo and against veerd
+ *      (and, as a diagnostic, the busy echo); their ticks in phase (default) or spread over
+ *      the period (--stagger). The S seconds of each are cut into R rounds, each running the
+ *      three in another order, so a host stall of the shared machine lands on the floor as
+ *      often as on veerd: run one after the other, a single 60 ms stall (240 misses) decided
+ *      the miss ratio.
  *      Latency counts from the scheduled send time, not the actual one, so a late loop cannot
  *      hide a slow reply (coordinated omission); a reply later than 1 ms after its schedule, or
  *      one veerd flags with VEER_ACT_DEADLINE, is a miss. The loop's own lateness is printed,
@@ -617,44 +618,63 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
     print_summary("  of which inside veerd (server_us)", h_server); /* whole microseconds */
     print_summary("closed loop, echo busy inference p50", h_gap);
 
-    /* 4. Paced. */
-    paced_result pe, pv;
+    /* 4. Paced: the echo, veerd and, as a diagnostic, the echo busy for the inference p50 before
+     * each reply. Round r runs the three in the order of the r-th of their six permutations,
+     * so over six rounds each takes each place twice and host stalls fall on all three alike. */
+    static const int order[6][3] = {{0, 1, 2}, {1, 2, 0}, {2, 0, 1},
+                                    {0, 2, 1}, {2, 1, 0}, {1, 0, 2}};
+    paced_result pe, pv, pg;
     paced_result_init(&pe);
     paced_result_init(&pv);
+    paced_result_init(&pg);
+    target tg = tv;
+    tg.act = gap_ep;
     uint64_t ticks = (uint64_t)(seconds_paced * 1000.0 / paced_rounds);
-    char per_round[512];
+    char per_round[768];
     size_t used = 0;
     for (int round = 0; round < paced_rounds; round++) {
-        uint64_t me = pe.misses, mv = pv.misses;
-        /* ABBA order: each side goes first in half the rounds. */
-        for (int k = 0; k < 2; k++) {
-            if ((k == 0) == (round % 2 == 0))
+        uint64_t me = pe.misses, mv = pv.misses, mg = pg.misses;
+        for (int k = 0; k < 3; k++) {
+            int who = order[round % 6][k];
+            if (who == 0)
                 run_paced(ctx, &te, 0, ticks, &pe);
-            else
+            else if (who == 1)
                 run_paced(ctx, &tv, 1, ticks, &pv);
+            else
+                run_paced(ctx, &tg, 0, ticks, &pg);
         }
-        used += (size_t)snprintf(per_round + used, sizeof per_round - used, " %" PRIu64 "/%" PRIu64,
-                                 pe.misses - me, pv.misses - mv);
+        used += (size_t)snprintf(per_round + used, sizeof per_round - used,
+                                 " %" PRIu64 "/%" PRIu64 "/%" PRIu64, pe.misses - me,
+                                 pg.misses - mg, pv.misses - mv);
         if (used >= sizeof per_round)
             used = sizeof per_round - 1;
     }
     printf("  paced: %d controllers x 1 kHz x %.0f s each, deadline 1 ms, latency from the "
-           "scheduled send; %d alternating rounds of %.1f s\n",
+           "scheduled send; %d rounds of %.1f s, the three in rotating order\n",
            CONTROLLERS, seconds_paced, paced_rounds, (double)ticks / 1000.0);
-    printf("  misses per round (echo/veerd):%s\n", per_round);
+    printf("  misses per round (echo/busy echo/veerd):%s\n", per_round);
     print_summary("paced, echo", pe.latency);
+    print_summary("paced, echo busy inference p50", pg.latency);
     print_summary("paced, veerd", pv.latency);
     print_summary("  of which inside veerd (server_us)", pv.server); /* whole microseconds */
     print_summary("pacing loop lateness (echo run)", pe.lateness);
     print_summary("pacing loop lateness (veerd run)", pv.lateness);
     double miss_e = (double)pe.misses / (double)pe.sent,
-           miss_v = (double)pv.misses / (double)pv.sent;
-    printf("  misses: echo %" PRIu64 "/%" PRIu64 " (%.4f %%), veerd %" PRIu64 "/%" PRIu64
-           " (%.4f %%; %" PRIu64 " flagged by veerd, %" PRIu64 " without a reply within 50 ms)\n",
-           pe.misses, pe.sent, 100 * miss_e, pv.misses, pv.sent, 100 * miss_v, pv.flagged, pv.lost);
+           miss_v = (double)pv.misses / (double)pv.sent,
+           miss_g = (double)pg.misses / (double)pg.sent;
+    printf("  misses: echo %" PRIu64 "/%" PRIu64 " (%.4f %%), busy echo %" PRIu64 " (%.4f %%), "
+           "veerd %" PRIu64 "/%" PRIu64 " (%.4f %%; %" PRIu64 " flagged by veerd, %" PRIu64
+           " without a reply within 50 ms)\n",
+           pe.misses, pe.sent, 100 * miss_e, pg.misses, 100 * miss_g, pv.misses, pv.sent,
+           100 * miss_v, pv.flagged, pv.lost);
     printf("  of those misses, sent more than %llu us after their tick (a stalled controller): "
-           "echo %" PRIu64 ", veerd %" PRIu64 "\n",
-           LATE_SEND_NS / 1000, pe.late_sends, pv.late_sends);
+           "echo %" PRIu64 ", busy echo %" PRIu64 ", veerd %" PRIu64 "\n",
+           LATE_SEND_NS / 1000, pe.late_sends, pg.late_sends, pv.late_sends);
+    /* The diagnostic: a service that computes for the inference time before each reply, with
+     * nothing else of veerd's, misses this much more often than the bare echo. */
+    if (pe.misses > 0 && pg.misses > 0)
+        printf("  diagnostic: busy echo / echo misses %.2f; veerd / busy echo %.2f\n",
+               miss_g / miss_e, miss_v / miss_g);
 
     /* 5. Throughput. */
     double thr_e = throughput(ctx, &tce), thr_v = throughput(ctx, &tc);
@@ -701,6 +721,9 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
     veer_hist_destroy(pv.latency);
     veer_hist_destroy(pv.lateness);
     veer_hist_destroy(pv.server);
+    veer_hist_destroy(pg.latency);
+    veer_hist_destroy(pg.lateness);
+    veer_hist_destroy(pg.server);
     veer_workspace_destroy(ws);
     veer_bundle_close(b);
     free(z);
