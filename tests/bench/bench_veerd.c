@@ -6,13 +6,13 @@
  *   1. in-process inference: veer_act on this thread (p50, p99, p99.9);
  *   2. closed loop: one DEALER, request -> reply, against the echo and against veerd (with the
  *      time veerd reports for itself), and, as a diagnostic, against the echo kept busy for
- *      the inference p50 before each reply;
+ *      the inference p50 before each reply, and against the echo running the policy itself;
  *   3. paced: 4 controllers at 1 kHz, deadline 1 ms, against the echo and against veerd
- *      (and, as a diagnostic, the busy echo); their ticks in phase (default) or spread over
- *      the period (--stagger). The S seconds of each are cut into R rounds, each running the
- *      three in another order, so a host stall of the shared machine lands on the floor as
- *      often as on veerd: run one after the other, a single 60 ms stall (240 misses) decided
- *      the miss ratio.
+ *      (and, as a diagnostic, the echo running the policy before each reply); their ticks in
+ *      phase (default) or spread over the period (--stagger). The S seconds of each are cut
+ *      into R rounds, each running the three in another order, so a host stall of the shared
+ *      machine lands on the floor as often as on veerd: run one after the other, a single
+ *      60 ms stall (240 misses) decided the miss ratio.
  *      Latency counts from the scheduled send time, not the actual one, so a late loop cannot
  *      hide a slow reply (coordinated omission); a reply later than 1 ms after its schedule, or
  *      one veerd flags with VEER_ACT_DEADLINE, is a miss. The loop's own lateness is printed,
@@ -88,6 +88,10 @@ typedef struct echo {
     char endpoint[256];
     size_t reply_len;
     uint64_t gap_ns; /* busy time before each reply, standing in for inference (0: none) */
+    /* With a bundle: run the policy (veer_act on `state` and `z`) before each reply, the same
+     * CPU work veerd does for the benchmark's act request, without anything else of veerd's. */
+    const veer_bundle *bundle;
+    const float *state, *z;
 } echo;
 
 /* The echo runs in its own process, like veerd, so the floor pays the same cross-process
@@ -110,6 +114,13 @@ static void *echo_main(void *arg)
         exit(1);
     }
     uint8_t reply[4096] = {0};
+    float action[64], value;
+    uint32_t flags;
+    veer_workspace *ws = NULL;
+    if (e->bundle != NULL && veer_workspace_create(e->bundle, 1, &ws, NULL) != 0) {
+        fprintf(stderr, "echo: no workspace\n");
+        exit(1);
+    }
     zmq_msg_t id, body;
     zmq_msg_init(&id);
     zmq_msg_init(&body);
@@ -119,6 +130,8 @@ static void *echo_main(void *arg)
         zmq_msg_recv(&body, s, 0);
         for (uint64_t until = veer__now_ns() + e->gap_ns; veer__now_ns() < until;)
             ;
+        if (ws != NULL)
+            veer_act(ws, e->state, e->z, action, &value, &flags);
         /* The reply is as long as veerd's and starts with the request's first bytes, which
          * hold its protocol and id fields (wire.h: the same leading fields as a Reply), so the
          * sender can match replies to requests exactly as it does with veerd. */
@@ -131,6 +144,7 @@ static void *echo_main(void *arg)
     zmq_msg_close(&id);
     zmq_msg_close(&body);
     zmq_close(s);
+    veer_workspace_destroy(ws);
     return NULL;
 }
 
@@ -506,7 +520,7 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
     char dir[] = "/tmp/veer-bench-XXXXXX";
     if (mkdtemp(dir) == NULL)
         return 1;
-    char act[256], admin[256], events[256], echo_ep[256], gap_ep[256];
+    char act[256], admin[256], events[256], echo_ep[256], gap_ep[256], pol_ep[256];
     if (strcmp(transport, "tcp") == 0) {
         int base = 20000 + (int)(getpid() % 20000);
         snprintf(act, sizeof act, "tcp://127.0.0.1:%d", base);
@@ -514,12 +528,14 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
         snprintf(events, sizeof events, "tcp://127.0.0.1:%d", base + 2);
         snprintf(echo_ep, sizeof echo_ep, "tcp://127.0.0.1:%d", base + 3);
         snprintf(gap_ep, sizeof gap_ep, "tcp://127.0.0.1:%d", base + 4);
+        snprintf(pol_ep, sizeof pol_ep, "tcp://127.0.0.1:%d", base + 5);
     } else {
         snprintf(act, sizeof act, "ipc://%s/act", dir);
         snprintf(admin, sizeof admin, "ipc://%s/admin", dir);
         snprintf(events, sizeof events, "ipc://%s/events", dir);
         snprintf(echo_ep, sizeof echo_ep, "ipc://%s/echo", dir);
         snprintf(gap_ep, sizeof gap_ep, "ipc://%s/echo-gap", dir);
+        snprintf(pol_ep, sizeof pol_ep, "ipc://%s/echo-policy", dir);
     }
     pid_t pid = start_veerd(veerd, bundle_path, dir, act, admin, events);
     void *ctx = zmq_ctx_new();
@@ -595,86 +611,107 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
     eg.gap_ns = pct(inference, 50);
     snprintf(eg.endpoint, sizeof eg.endpoint, "%s", gap_ep);
     pid_t gap_pid = spawn_echo(&eg);
+    /* The second diagnostic: the echo running the policy itself before each reply (veer_act on
+     * the request's state and task), the CPU work of an act with nothing else of veerd's. Unlike
+     * the busy echo's fixed wait, its time grows like veerd's when the act finds its caches
+     * cold or shares its core, as under paced load. */
+    echo ep = e;
+    ep.bundle = b;
+    ep.state = info->reference_states;
+    ep.z = z;
+    snprintf(ep.endpoint, sizeof ep.endpoint, "%s", pol_ep);
+    pid_t pol_pid = spawn_echo(&ep);
     target te = tv;
     te.act = echo_ep;
     printf("  request %zu bytes, reply %d bytes; OpenBLAS kernel %s\n", tv.req_len, reply_len,
            veer_blas_kernel());
 
     /* 3. Closed loops. */
-    veer_hist *h_echo, *h_veerd, *h_server, *h_gap;
+    veer_hist *h_echo, *h_veerd, *h_server, *h_gap, *h_pol;
     veer_hist_create(&h_echo);
     veer_hist_create(&h_veerd);
     veer_hist_create(&h_server);
     veer_hist_create(&h_gap);
-    target tce = tc, tcg = tc;
+    veer_hist_create(&h_pol);
+    target tce = tc, tcg = tc, tcp = tc;
     tce.act = echo_ep;
     tcg.act = gap_ep;
+    tcp.act = pol_ep;
     closed_loop(ctx, &tce, h_echo, NULL);
     closed_loop(ctx, &tc, h_veerd, h_server);
     closed_loop(ctx, &tcg, h_gap, NULL);
+    closed_loop(ctx, &tcp, h_pol, NULL);
     print_summary("in-process inference (veer_act)", inference);
     print_summary("closed loop, bare ZeroMQ echo", h_echo);
     print_summary("closed loop, veerd", h_veerd);
     print_summary("  of which inside veerd (server_us)", h_server); /* whole microseconds */
     print_summary("closed loop, echo busy inference p50", h_gap);
+    print_summary("closed loop, echo running the policy", h_pol);
 
-    /* 4. Paced: the echo, veerd and, as a diagnostic, the echo busy for the inference p50 before
-     * each reply. Round r runs the three in the order of the r-th of their six permutations,
-     * so over six rounds each takes each place twice and host stalls fall on all three alike. */
+    /* 4. Paced: the echo, veerd and, as a diagnostic, the echo running the policy. Round r
+     * runs them in the order of the r-th of their six permutations, so over six rounds each
+     * takes each place twice and host stalls fall on all three alike. The policy echo is left
+     * out when it could not keep up (four controllers' inference filling half the period or
+     * more): it has no deadline check and would only queue. */
     static const int order[6][3] = {{0, 1, 2}, {1, 2, 0}, {2, 0, 1},
                                     {0, 2, 1}, {2, 1, 0}, {1, 0, 2}};
-    paced_result pe, pv, pg;
+    int with_pol = CONTROLLERS * pct(inference, 50) < DEADLINE_NS / 2;
+    paced_result pe, pv, pp;
     paced_result_init(&pe);
     paced_result_init(&pv);
-    paced_result_init(&pg);
-    target tg = tv;
-    tg.act = gap_ep;
+    paced_result_init(&pp);
+    target tp = tv;
+    tp.act = pol_ep;
     uint64_t ticks = (uint64_t)(seconds_paced * 1000.0 / paced_rounds);
     char per_round[768];
     size_t used = 0;
     for (int round = 0; round < paced_rounds; round++) {
-        uint64_t me = pe.misses, mv = pv.misses, mg = pg.misses;
+        uint64_t me = pe.misses, mv = pv.misses, mp = pp.misses;
         for (int k = 0; k < 3; k++) {
             int who = order[round % 6][k];
             if (who == 0)
                 run_paced(ctx, &te, 0, ticks, &pe);
             else if (who == 1)
                 run_paced(ctx, &tv, 1, ticks, &pv);
-            else
-                run_paced(ctx, &tg, 0, ticks, &pg);
+            else if (with_pol)
+                run_paced(ctx, &tp, 0, ticks, &pp);
         }
         used += (size_t)snprintf(per_round + used, sizeof per_round - used,
                                  " %" PRIu64 "/%" PRIu64 "/%" PRIu64, pe.misses - me,
-                                 pg.misses - mg, pv.misses - mv);
+                                 pp.misses - mp, pv.misses - mv);
         if (used >= sizeof per_round)
             used = sizeof per_round - 1;
     }
     printf("  paced: %d controllers x 1 kHz x %.0f s each, deadline 1 ms, latency from the "
-           "scheduled send; %d rounds of %.1f s, the three in rotating order\n",
+           "scheduled send; %d rounds of %.1f s, in rotating order\n",
            CONTROLLERS, seconds_paced, paced_rounds, (double)ticks / 1000.0);
-    printf("  misses per round (echo/busy echo/veerd):%s\n", per_round);
+    if (!with_pol)
+        printf("  (the policy echo is left out: %d x inference p50 fills half the period)\n",
+               CONTROLLERS);
+    printf("  misses per round (echo/policy echo/veerd):%s\n", per_round);
     print_summary("paced, echo", pe.latency);
-    print_summary("paced, echo busy inference p50", pg.latency);
+    if (with_pol)
+        print_summary("paced, echo running the policy", pp.latency);
     print_summary("paced, veerd", pv.latency);
     print_summary("  of which inside veerd (server_us)", pv.server); /* whole microseconds */
     print_summary("pacing loop lateness (echo run)", pe.lateness);
     print_summary("pacing loop lateness (veerd run)", pv.lateness);
     double miss_e = (double)pe.misses / (double)pe.sent,
            miss_v = (double)pv.misses / (double)pv.sent,
-           miss_g = (double)pg.misses / (double)pg.sent;
-    printf("  misses: echo %" PRIu64 "/%" PRIu64 " (%.4f %%), busy echo %" PRIu64 " (%.4f %%), "
+           miss_p = pp.sent ? (double)pp.misses / (double)pp.sent : 0.0;
+    printf("  misses: echo %" PRIu64 "/%" PRIu64 " (%.4f %%), policy echo %" PRIu64 " (%.4f %%), "
            "veerd %" PRIu64 "/%" PRIu64 " (%.4f %%; %" PRIu64 " flagged by veerd, %" PRIu64
            " without a reply within 50 ms)\n",
-           pe.misses, pe.sent, 100 * miss_e, pg.misses, 100 * miss_g, pv.misses, pv.sent,
+           pe.misses, pe.sent, 100 * miss_e, pp.misses, 100 * miss_p, pv.misses, pv.sent,
            100 * miss_v, pv.flagged, pv.lost);
     printf("  of those misses, sent more than %llu us after their tick (a stalled controller): "
-           "echo %" PRIu64 ", busy echo %" PRIu64 ", veerd %" PRIu64 "\n",
-           LATE_SEND_NS / 1000, pe.late_sends, pg.late_sends, pv.late_sends);
-    /* The diagnostic: a service that computes for the inference time before each reply, with
-     * nothing else of veerd's, misses this much more often than the bare echo. */
-    if (pe.misses > 0 && pg.misses > 0)
-        printf("  diagnostic: busy echo / echo misses %.2f; veerd / busy echo %.2f\n",
-               miss_g / miss_e, miss_v / miss_g);
+           "echo %" PRIu64 ", policy echo %" PRIu64 ", veerd %" PRIu64 "\n",
+           LATE_SEND_NS / 1000, pe.late_sends, pp.late_sends, pv.late_sends);
+    /* The diagnostic: how much more often a service that does only the act's CPU work misses
+     * than the bare echo, and how veerd compares with it. */
+    if (pe.misses > 0 && pp.misses > 0)
+        printf("  diagnostic: policy echo / echo misses %.2f; veerd / policy echo %.2f\n",
+               miss_p / miss_e, miss_v / miss_p);
 
     /* 5. Throughput. */
     double thr_e = throughput(ctx, &tce), thr_v = throughput(ctx, &tc);
@@ -705,6 +742,8 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
     waitpid(echo_pid, NULL, 0);
     kill(gap_pid, SIGTERM);
     waitpid(gap_pid, NULL, 0);
+    kill(pol_pid, SIGTERM);
+    waitpid(pol_pid, NULL, 0);
     kill(pid, SIGTERM);
     int status = 0;
     waitpid(pid, &status, 0);
@@ -721,9 +760,10 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
     veer_hist_destroy(pv.latency);
     veer_hist_destroy(pv.lateness);
     veer_hist_destroy(pv.server);
-    veer_hist_destroy(pg.latency);
-    veer_hist_destroy(pg.lateness);
-    veer_hist_destroy(pg.server);
+    veer_hist_destroy(pp.latency);
+    veer_hist_destroy(pp.lateness);
+    veer_hist_destroy(pp.server);
+    veer_hist_destroy(h_pol);
     veer_workspace_destroy(ws);
     veer_bundle_close(b);
     free(z);
