@@ -140,6 +140,15 @@ int veer_act(veer_workspace *ws, const float *state, const float *z, float *acti
 int veer_act_batch(veer_workspace *ws, size_t n, const float *states, const float *z,
                    float *actions, float *values, uint32_t *flags);
 
+/* Acts for `n` states, each with its own task vector: zs is n x z_dim, row i the task of state
+ * i (a service answering several channels at once). Same contract as veer_act_batch, and a
+ * non-finite value anywhere in zs is VEER_ENONFINITE for the whole call. For a discrete bundle
+ * one evaluation of F covers all n x action_count rows, which costs less than n calls of
+ * veer_act; its values may differ from veer_act's in the last bits (a many-row product sums in
+ * another order), so an argmax between two actions that tie to float precision may differ. */
+int veer_act_each(veer_workspace *ws, size_t n, const float *states, const float *zs,
+                  float *actions, float *values, uint32_t *flags);
+
 /* ---- The networks themselves (for checks, tools and the trainer's evaluation) -------------- */
 
 /* F(s, a, z) for n rows: states n x state_dim, actions n x action_dim (discrete: the index as a

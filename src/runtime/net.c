@@ -23,17 +23,22 @@ void veer__net_buf_sizes(const veer__net *net, size_t rows, size_t sizes[3])
             sizes[i] = need[i];
 }
 
-/* Writes the input row block for one branch. state_rep is 1 when the branch runs once per
- * state. Returns VEER_EINVAL for a discrete action that is not an integer in [0, count). */
-static int build_inputs(const veer__branch *br, const veer__rows *rows, size_t n,
-                        uint32_t state_rep, float *in)
+/* Writes the input row block for one branch: n rows, row r standing for row r * scale of
+ * `rows` (scale is state_rep when the branch runs once per state, else 1). Returns VEER_EINVAL
+ * for a discrete action that is not an integer in [0, count). */
+static int build_inputs(const veer__branch *br, const veer__rows *rows, size_t n, uint32_t scale,
+                        float *in)
 {
-    for (size_t r = 0; r < n; r++) {
-        float *row = in + r * br->in_width;
+    uint32_t state_rep = rows->state_rep ? rows->state_rep : 1;
+    uint32_t z_rep = rows->z_rep ? rows->z_rep : 1;
+    for (size_t u = 0; u < n; u++) {
+        float *row = in + u * br->in_width;
+        size_t r = u * scale;
         const float *s = rows->states + (r / state_rep) * rows->state_dim;
         size_t arow = rows->action_cycle ? r % rows->action_cycle : r;
         const float *a = rows->actions ? rows->actions + arow * rows->action_dim : NULL;
-        const float *z = rows->zs ? rows->zs + (rows->z_shared ? 0 : r) * rows->z_dim : NULL;
+        const float *z =
+            rows->zs ? rows->zs + (rows->z_shared ? 0 : r / z_rep) * rows->z_dim : NULL;
         for (uint32_t i = 0; i < br->input_count; i++) {
             const veer__input *inp = &br->inputs[i];
             switch (inp->kind) {
@@ -110,10 +115,14 @@ static int eval_branch(const veer__net *net, uint32_t b, const veer__net_bufs *b
 {
     const veer__branch *br = &net->branches[b];
     uint32_t rep = rows->state_rep ? rows->state_rep : 1;
-    int once_per_state = rep > 1 && !br->reads_action && (rows->z_shared || !br->reads_task);
+    /* A z per state (z_rep a multiple of state_rep) is as good as a shared one here: every row
+     * of a state reads the same z. */
+    uint32_t z_rep = rows->z_rep ? rows->z_rep : 1;
+    int same_z = rows->z_shared || !br->reads_task || z_rep % rep == 0;
+    int once_per_state = rep > 1 && !br->reads_action && same_z;
     size_t n = once_per_state ? rows->n / rep : rows->n;
 
-    int rc = build_inputs(br, rows, n, once_per_state ? 1 : rep, bufs->in);
+    int rc = build_inputs(br, rows, n, once_per_state ? rep : 1, bufs->in);
     if (rc != 0)
         return rc;
     const float *cur = bufs->in;

@@ -88,8 +88,9 @@ typedef struct veer__net {
 } veer__net;
 
 /* Where each row's inputs come from. Row r reads state row r / state_rep, action row
- * (action_cycle ? r % action_cycle : r), and z row r, or z row 0 when z_shared. Discrete acting
- * uses state_rep = action_cycle = action_count to evaluate every action for each state at once. */
+ * (action_cycle ? r % action_cycle : r), and z row r / z_rep (z_rep 0 counts as 1), or z row 0
+ * when z_shared. Discrete acting uses state_rep = action_cycle = action_count to evaluate every
+ * action for each state at once, with z_rep = action_count when each state has its own task. */
 typedef struct veer__rows {
     size_t n;
     uint32_t state_dim;
@@ -100,6 +101,7 @@ typedef struct veer__rows {
     uint32_t action_cycle;
     const float *zs;
     uint32_t z_dim;
+    uint32_t z_rep;
     int z_shared;
 } veer__rows;
 

@@ -5,7 +5,8 @@
  * actor is normalised, clip, then Q = F(s, a, z)·z for the clipped action (the value of what
  * is actually done). Discrete: F for every action of every state in one batched evaluation
  * (one pass over the weights instead of action_count passes), argmax of F·z with the lowest
- * index winning ties, Q the maximum. Nothing here allocates or locks. */
+ * index winning ties, Q the maximum. The task vector is either one for every state (z_each 0)
+ * or one per state (z_each 1, zs is m x z_dim). Nothing here allocates or locks. */
 #include <math.h>
 #include <string.h>
 
@@ -21,9 +22,21 @@ static void write_fallback(const veer_model_info *info, float *action, float *va
     *flags = VEER_ACT_FALLBACK | VEER_ACT_NONFINITE;
 }
 
+/* v = F·z for m states of `per` rows each (per: 1 continuous, action_count discrete). */
+static void q_values(size_t m, uint32_t per, uint32_t z_dim, const float *fo, const float *z,
+                     int z_each, float *v)
+{
+    if (!z_each) {
+        veer__k_row_dot(m * per, z_dim, fo, z, v);
+        return;
+    }
+    for (size_t r = 0; r < m; r++)
+        veer__k_row_dot(per, z_dim, fo + r * per * z_dim, z + r * z_dim, v + r * per);
+}
+
 /* m states of a continuous bundle. */
 static int act_continuous(veer_workspace *ws, size_t m, const float *states, const float *z,
-                          float *actions, float *values, uint32_t *flags)
+                          int z_each, float *actions, float *values, uint32_t *flags)
 {
     const veer_bundle *b = ws->bundle;
     const veer_model_info *info = &b->info;
@@ -35,7 +48,8 @@ static int act_continuous(veer_workspace *ws, size_t m, const float *states, con
                        .action_dim = adim,
                        .zs = z,
                        .z_dim = info->z_dim,
-                       .z_shared = 1};
+                       .z_rep = 1,
+                       .z_shared = !z_each};
     const float *y;
     int rc = veer__net_eval(&b->actor, &ws->bufs, &rows, &y);
     if (rc != 0)
@@ -68,7 +82,7 @@ static int act_continuous(veer_workspace *ws, size_t m, const float *states, con
     const float *fo;
     if ((rc = veer__net_eval(&b->forward, &ws->bufs, &rows, &fo)) != 0)
         return rc;
-    veer__k_row_dot(m, info->z_dim, fo, z, ws->values);
+    q_values(m, 1, info->z_dim, fo, z, z_each, ws->values);
 
     for (size_t r = 0; r < m; r++) {
         const float *a = ws->actions + r * adim;
@@ -84,7 +98,7 @@ static int act_continuous(veer_workspace *ws, size_t m, const float *states, con
 
 /* m states of a discrete bundle. */
 static int act_discrete(veer_workspace *ws, size_t m, const float *states, const float *z,
-                        float *actions, float *values, uint32_t *flags)
+                        int z_each, float *actions, float *values, uint32_t *flags)
 {
     const veer_bundle *b = ws->bundle;
     const veer_model_info *info = &b->info;
@@ -98,12 +112,13 @@ static int act_discrete(veer_workspace *ws, size_t m, const float *states, const
                        .action_cycle = count,
                        .zs = z,
                        .z_dim = info->z_dim,
-                       .z_shared = 1};
+                       .z_rep = count,
+                       .z_shared = !z_each};
     const float *fo;
     int rc = veer__net_eval(&b->forward, &ws->bufs, &rows, &fo);
     if (rc != 0)
         return rc;
-    veer__k_row_dot(m * count, info->z_dim, fo, z, ws->values);
+    q_values(m, count, info->z_dim, fo, z, z_each, ws->values);
 
     for (size_t r = 0; r < m; r++) {
         const float *q = ws->values + r * count;
@@ -138,14 +153,16 @@ static int indices_valid(const veer_bundle *b, size_t n, const float *states)
     return 1;
 }
 
-int veer_act_batch(veer_workspace *ws, size_t n, const float *states, const float *z,
-                   float *actions, float *values, uint32_t *flags)
+/* Both batch calls: zs holds one task vector (z_each 0) or one per state (z_each 1). */
+static int act_rows(veer_workspace *ws, size_t n, const float *states, const float *zs, int z_each,
+                    float *actions, float *values, uint32_t *flags)
 {
     /* A backward-only workspace has no buffers for F or the actor (workspace.h). */
-    if (ws == NULL || states == NULL || z == NULL || actions == NULL || ws->backward_only)
+    if (ws == NULL || states == NULL || zs == NULL || actions == NULL || ws->backward_only)
         return VEER_EINVAL;
     const veer_model_info *info = &ws->bundle->info;
-    if (!veer__k_all_finite(n * info->state_dim, states) || !veer__k_all_finite(info->z_dim, z))
+    if (!veer__k_all_finite(n * info->state_dim, states) ||
+        !veer__k_all_finite((z_each ? n : 1) * info->z_dim, zs))
         return VEER_ENONFINITE;
     if (!indices_valid(ws->bundle, n, states))
         return VEER_EINVAL;
@@ -154,15 +171,29 @@ int veer_act_batch(veer_workspace *ws, size_t n, const float *states, const floa
     for (size_t done = 0; done < n; done += ws->max_batch) {
         size_t m = n - done < ws->max_batch ? n - done : ws->max_batch;
         const float *s = states + done * info->state_dim;
+        const float *z = z_each ? zs + done * info->z_dim : zs;
         float *a = actions + done * info->action_dim;
         float *v = values ? values + done : ws->slice_values;
         uint32_t *f = flags ? flags + done : ws->slice_flags;
-        int rc = info->action_kind == VEER_ACTION_CONTINUOUS ? act_continuous(ws, m, s, z, a, v, f)
-                                                             : act_discrete(ws, m, s, z, a, v, f);
+        int rc = info->action_kind == VEER_ACTION_CONTINUOUS
+                     ? act_continuous(ws, m, s, z, z_each, a, v, f)
+                     : act_discrete(ws, m, s, z, z_each, a, v, f);
         if (rc != 0)
             return rc;
     }
     return 0;
+}
+
+int veer_act_batch(veer_workspace *ws, size_t n, const float *states, const float *z,
+                   float *actions, float *values, uint32_t *flags)
+{
+    return act_rows(ws, n, states, z, 0, actions, values, flags);
+}
+
+int veer_act_each(veer_workspace *ws, size_t n, const float *states, const float *zs,
+                  float *actions, float *values, uint32_t *flags)
+{
+    return act_rows(ws, n, states, zs, 1, actions, values, flags);
 }
 
 int veer_act(veer_workspace *ws, const float *state, const float *z, float *action, float *value,

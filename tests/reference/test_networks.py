@@ -153,9 +153,36 @@ def test_actor(case):
     assert rel_err(rt.actor(s, z), bundle.actor(s, z)) < REL
 
 
+def check_policy(bundle, s, zs, a_c, v_c, fl):
+    """libveer's actions, values and flags for states s under tasks zs (one row each) against
+    the reference policy: continuous = clip(map(actor)), discrete = argmax_a F(s, a, z) . z,
+    value = Q at the action. Returns how many actions were clipped."""
+    assert not np.any(fl & (veerlib.ACT_FALLBACK | veerlib.ACT_NONFINITE))
+    if bundle.action.kind == "continuous":
+        a_r, v_r, clipped = bundle.policy(s, zs)
+        span = bundle.action.high - bundle.action.low
+        assert np.max(np.abs(a_c - a_r) / span) < REL
+        # Every action within the bounds, exactly, in float32.
+        assert np.all(a_c >= bundle.action.low) and np.all(a_c <= bundle.action.high)
+        assert np.array_equal((fl & veerlib.ACT_CLIPPED) != 0, clipped)
+        scale = q_scale(bundle.F(s, a_r, zs), zs)
+        assert np.max(np.abs(v_c - v_r) / scale) < REL
+        return int(clipped.sum())
+    idx_r, v_r, q_all = bundle.policy(s, zs)
+    idx_c = np.rint(a_c[:, 0]).astype(int)
+    rows = np.arange(len(s))
+    scale = q_scale(bundle.F(s, idx_c[:, None].astype(np.float64), zs), zs)
+    # The argmax must agree, except between actions whose Q differ by less than the
+    # tolerance (then either is a correct argmax in float32).
+    gap = q_all[rows, idx_r] - q_all[rows, idx_c]
+    assert np.all(gap <= REL * scale), f"argmax differs: {np.nonzero(idx_c != idx_r)}"
+    assert np.mean(idx_c == idx_r) > 0.9
+    assert np.max(np.abs(v_c - q_all[rows, idx_c]) / scale) < REL
+    return 0
+
+
 def test_policy(case):
-    """veer_act_batch (one z for all rows) and veer_act against the reference policy:
-    continuous = clip(map(actor)), discrete = argmax_a F(s, a, z) . z, value = Q at the action."""
+    """veer_act_batch (one z for all rows) and veer_act against the reference policy."""
     name, bundle, rt, states = case
     rng = np.random.default_rng(4)
     s = sample_states(bundle, states, rng)
@@ -163,28 +190,7 @@ def test_policy(case):
     for z in task_vectors(bundle, rt, s, rng, 4):
         zs = np.repeat(z[None], len(s), axis=0)
         a_c, v_c, fl = rt.act_batch(s, z)
-        assert not np.any(fl & (veerlib.ACT_FALLBACK | veerlib.ACT_NONFINITE))
-        if bundle.action.kind == "continuous":
-            a_r, v_r, clipped = bundle.policy(s, zs)
-            span = bundle.action.high - bundle.action.low
-            assert np.max(np.abs(a_c - a_r) / span) < REL
-            # Every action within the bounds, exactly, in float32.
-            assert np.all(a_c >= bundle.action.low) and np.all(a_c <= bundle.action.high)
-            assert np.array_equal((fl & veerlib.ACT_CLIPPED) != 0, clipped)
-            checked_clip += int(clipped.sum())
-            scale = q_scale(bundle.F(s, a_r, zs), zs)
-            assert np.max(np.abs(v_c - v_r) / scale) < REL
-        else:
-            idx_r, v_r, q_all = bundle.policy(s, zs)
-            idx_c = np.rint(a_c[:, 0]).astype(int)
-            rows = np.arange(len(s))
-            scale = q_scale(bundle.F(s, idx_c[:, None].astype(np.float64), zs), zs)
-            # The argmax must agree, except between actions whose Q differ by less than the
-            # tolerance (then either is a correct argmax in float32).
-            gap = q_all[rows, idx_r] - q_all[rows, idx_c]
-            assert np.all(gap <= REL * scale), f"argmax differs: {np.nonzero(idx_c != idx_r)}"
-            assert np.mean(idx_c == idx_r) > 0.9
-            assert np.max(np.abs(v_c - q_all[rows, idx_c]) / scale) < REL
+        checked_clip += check_policy(bundle, s, zs, a_c, v_c, fl)
         # The single-state call gives the batch's answer.
         for i in (0, len(s) - 1):
             rc, a1, v1, fl1 = rt.act(s[i], z)
@@ -192,6 +198,27 @@ def test_policy(case):
             assert abs(v1 - v_c[i]) <= REL * max(abs(v_c[i]), 1e-6) * 10
     if bundle.action.kind == "continuous":
         assert checked_clip > 0, "the test states never reached the bounds: clipping unchecked"
+
+
+def test_policy_each(case):
+    """veer_act_each (a task vector per state, as veerd's batched act thread uses it) against
+    the reference policy, with the tasks interleaved so that neighbouring states, and the rows
+    of one slice of the workspace's max_batch (16), read different z."""
+    name, bundle, rt, states = case
+    rng = np.random.default_rng(5)
+    s = sample_states(bundle, states, rng)
+    tasks = np.stack(task_vectors(bundle, rt, s, rng, 4))
+    zs = tasks[rng.integers(0, len(tasks), len(s))]
+    assert len(s) > 16 and len({tuple(z) for z in zs[:16]}) > 1
+    a_c, v_c, fl = rt.act_each(s, zs)
+    clipped = check_policy(bundle, s, zs, a_c, v_c, fl)
+    if bundle.action.kind == "continuous":
+        assert clipped > 0, "the test states never reached the bounds: clipping unchecked"
+    # A NaN in any task row refuses the whole call and writes nothing (runtime.h).
+    bad = zs.copy()
+    bad[len(s) - 1, 0] = np.nan
+    with pytest.raises(RuntimeError, match="VEER_ENONFINITE"):
+        rt.act_each(s, bad)
 
 
 def test_info_matches_file(case):

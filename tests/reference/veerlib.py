@@ -79,6 +79,7 @@ def load_library():
         "veer_workspace_destroy": (None, [V]),
         "veer_act": (C.c_int, [V, F32P, F32P, F32P, F32P, U32P]),
         "veer_act_batch": (C.c_int, [V, C.c_size_t, F32P, F32P, F32P, F32P, U32P]),
+        "veer_act_each": (C.c_int, [V, C.c_size_t, F32P, F32P, F32P, F32P, U32P]),
         "veer_eval_forward": (C.c_int, [V, C.c_size_t, F32P, F32P, F32P, F32P]),
         "veer_eval_backward": (C.c_int, [V, C.c_size_t, F32P, F32P]),
         "veer_eval_actor": (C.c_int, [V, C.c_size_t, F32P, F32P, F32P]),
@@ -173,6 +174,17 @@ class Runtime:
         fl = np.zeros(n, np.uint32)
         self._check(self.lib.veer_act_batch(self.ws, n, ptr(s), ptr(zz), ptr(a), ptr(v),
                                             fl.ctypes.data_as(U32P)), "veer_act_batch")
+        return a, v, fl
+
+    def act_each(self, states, zs):
+        """veer_act_each: row i of zs is the task of state i."""
+        s, zz = f32(states), f32(zs)
+        n = s.shape[0]
+        a = np.zeros((n, self.adim), np.float32)
+        v = np.zeros(n, np.float32)
+        fl = np.zeros(n, np.uint32)
+        self._check(self.lib.veer_act_each(self.ws, n, ptr(s), ptr(zz), ptr(a), ptr(v),
+                                           fl.ctypes.data_as(U32P)), "veer_act_each")
         return a, v, fl
 
     def act(self, state, z):
