@@ -4,12 +4,14 @@
  * lock-free channel table, computes the action with its own veer_workspace and packs the reply
  * into a preallocated buffer: no allocation of ours, no lock that admin work can hold, no
  * logging. It answers Act and Describe; anything else gets an EMSGTYPE error naming the admin
- * socket.
+ * socket. With batch_max above 1 it takes the requests already queued together (up to
+ * batch_max), evaluates the policy once for all of them and answers in arrival order.
  *
  * Deadlines. The deadline counts from the moment the thread takes the request off the socket
  * (time spent queued inside libzmq before that is invisible to the server; the client's own
  * local deadline covers it). A request whose policy would finish late by the running p99 (or
- * --deadline-percentile) of policy time, or that did finish late, gets the fallback action with VEER_ACT_DEADLINE.
+ * --deadline-percentile) of policy time, or whose reply would leave late, gets the fallback
+ * action with VEER_ACT_DEADLINE.
  *
  * Coverage. An action the policy computed for a state beyond the training p99.9 Mahalanobis
  * distance carries VEER_ACT_OUT_OF_COVERAGE (fallback actions do not: they owe nothing to the
@@ -40,6 +42,7 @@ typedef struct veer__act_config {
     uint32_t default_deadline_us;
     uint32_t deadline_percentile;     /* 50..100; 0 means 99 */
     uint32_t spin_us;                 /* poll this long without sleeping before blocking */
+    uint32_t batch_max;               /* requests answered together at most; 0 or 1: one by one */
     uint32_t priority;                /* SCHED_FIFO priority of the thread; 0: ordinary */
     int pin;                          /* 1: the thread pins itself to `cpu` before serving */
     uint32_t cpu;
@@ -55,7 +58,7 @@ typedef struct veer__act_config {
  * time), so there is no queue-wait stage. */
 typedef enum veer__act_stage {
     VEER__ACT_STAGE_DECODE = 0, /* unpacking the Request into the arena */
-    VEER__ACT_STAGE_POLICY = 1, /* veer_act: the networks (only when the policy ran) */
+    VEER__ACT_STAGE_POLICY = 1, /* the networks, once per batch (only when the policy ran) */
     VEER__ACT_STAGE_REPLY = 2,  /* packing the Reply and handing it to libzmq */
     VEER__ACT_STAGE_TOTAL = 3,  /* off the socket to handed back: every request */
     VEER__ACT_STAGE_COUNT = 4,
@@ -66,6 +69,8 @@ typedef enum veer__act_stage {
 
 typedef struct veer__act_counters {
     uint64_t acts, fallbacks, deadline_misses, errors, no_task;
+    uint64_t policy_passes; /* evaluations of the policy (one per batch that needed it) */
+    uint64_t policy_states; /* states those evaluations covered */
 } veer__act_counters;
 
 /* Creates the socket, binds it and starts the thread. Returns 0, or VEER_EIO (bind failed;

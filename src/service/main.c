@@ -269,6 +269,7 @@ int main(int argc, char **argv)
                              .default_deadline_us = d.cfg.default_deadline_us,
                              .deadline_percentile = d.cfg.deadline_percentile,
                              .spin_us = d.cfg.act_spin_us,
+                             .batch_max = d.cfg.act_batch,
                              .priority = d.cfg.act_priority,
                              .pin = d.cfg.act_cpu_on,
                              .cpu = d.cfg.act_cpu_index,

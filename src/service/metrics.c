@@ -190,6 +190,13 @@ static void render_counters(veer__metrics *m, const veer__metrics_extra *extra,
     family(r, "veer_act_no_task_total", "counter",
            "Act requests on a channel without an active task.");
     counter_u64(r, "veer_act_no_task_total", NULL, NULL, c.no_task);
+    family(r, "veer_act_policy_passes_total", "counter",
+           "Evaluations of the policy networks; with --act-batch above 1 one pass can answer "
+           "several acts.");
+    counter_u64(r, "veer_act_policy_passes_total", NULL, NULL, c.policy_passes);
+    family(r, "veer_act_policy_states_total", "counter",
+           "States evaluated by those passes (divided by the passes: the mean batch).");
+    counter_u64(r, "veer_act_policy_states_total", NULL, NULL, c.policy_states);
     family(r, "veer_act_errors_total", "counter",
            "Error replies on the act socket, by error code.");
     for (int code = 1; code < (int)VEER__ACT_ERROR_CODES && m->cfg.act != NULL; code++) {

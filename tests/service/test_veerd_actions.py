@@ -254,3 +254,104 @@ def test_puts_in_flight(bundle, start):
     assert list(puts[1].task.z) == list(puts[4].task.z)
     assert puts[4].task.name == "big-twin"
     assert c.switch("arm", "big").channel.epoch == (1 if switched_early else 2)
+
+
+def metric(port, name):
+    """One unlabelled counter from veerd's /metrics (Prometheus text format: `name value`)."""
+    import urllib.request
+    with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=10) as r:
+        for line in r.read().decode().splitlines():
+            if line.startswith(name + " "):
+                return float(line.split()[1])
+    raise KeyError(name)
+
+
+def test_batched_acts_match_reference(bundle, start):
+    """--act-batch 8: a burst of acts on three channels with three tasks, sent without waiting so
+    that they queue and are answered in batches (one veer_act_each per batch), with requests for
+    a channel with no task, of a wrong state length and a describe mixed in. Every reply comes
+    back, in the order sent; errors and fallbacks are the ones a single act would give; every
+    action and value equals the independent NumPy forward pass (veer.reference, the reference
+    of tests/reference/test_networks.py) for the state and its channel's task within 1e-5
+    (normwise relative, Higham 2nd ed. section 1.2; for discrete models the argmax may differ
+    only between actions whose Q tie within that tolerance)."""
+    from veer import bundle as vb
+    port = harness.free_port()
+    d, c = start(bundle, "tcp", ("--act-batch", "8", "--http", f"127.0.0.1:{port}"))
+    rng = np.random.default_rng(8)
+    zs = {}
+    for k in range(3):
+        rewards = rng.normal(size=64).astype(np.float32)
+        reply = c.put_samples(f"bin-{k}", bundle.states[:64], rewards)
+        assert reply.WhichOneof("body") == "task", reply
+        zs[f"cell-{k}"] = np.array(reply.task.z, np.float32)
+        assert c.switch(f"cell-{k}", f"bin-{k}").channel.epoch >= 1
+
+    n = 240
+    kinds, states, chans, payloads = [], [], [], []
+    for i in range(n):
+        state = bundle.states[200 + i]
+        if i % 29 == 7:
+            kind, q = "short", c.act_request("cell-0", state[:-1], seq=i, deadline_us=2000000)
+        elif i % 17 == 5:
+            kind, q = "idle", c.act_request("idle", state, seq=i, deadline_us=2000000)
+        elif i == 100:
+            kind, q = "describe", harness.wire.Request()
+            q.describe.SetInParent()
+        else:
+            kind, q = "act", c.act_request(f"cell-{i % 3}", state, seq=i, deadline_us=2000000)
+        q.protocol, q.id = 1, 1000 + i
+        kinds.append(kind)
+        states.append(state)
+        chans.append(f"cell-{i % 3}")
+        payloads.append(q.SerializeToString())
+    for p in payloads:  # all at once: the act thread finds them queued
+        c.act.send(p)
+    replies = []
+    for _ in range(n):
+        assert c.act.poll(20000), f"only {len(replies)} of {n} replies"
+        r = harness.wire.Reply()
+        r.ParseFromString(c.act.recv())
+        replies.append(r)
+    assert [r.id for r in replies] == [1000 + i for i in range(n)], "replies out of order"
+
+    acted = [i for i in range(n) if kinds[i] == "act"]
+    for i in range(n):
+        r = replies[i]
+        if kinds[i] == "short":
+            expect_error(r, "EDIM", "act.state")
+        elif kinds[i] == "idle":
+            assert r.act.flags == ACT_FALLBACK | ACT_NO_TASK and r.act.seq == i
+        elif kinds[i] == "describe":
+            assert r.WhichOneof("body") == "describe"
+        else:
+            assert r.WhichOneof("body") == "act", r
+            assert r.act.seq == i and r.act.task == f"bin-{i % 3}"
+            assert r.act.flags & (ACT_FALLBACK | ACT_DEADLINE) == 0, r.act
+
+    ref = vb.read_bundle(bundle.data)
+    S = np.array([states[i] for i in acted], np.float64)
+    Z = np.array([zs[chans[i]] for i in acted], np.float64)
+    A = np.array([replies[i].act.action for i in acted], np.float64)
+    V = np.array([replies[i].act.value for i in acted], np.float64)
+    rel = 1e-5
+    if ref.action.kind == "continuous":
+        a_r, v_r, clipped = ref.policy(S, Z)
+        assert np.max(np.abs(A - a_r) / (ref.action.high - ref.action.low)) < rel
+        scale = np.abs(ref.F(S, a_r, Z)).max(axis=1) * np.abs(Z).sum(axis=1)
+        assert np.max(np.abs(V - v_r) / scale) < rel
+    else:
+        idx_r, v_r, q_all = ref.policy(S, Z)
+        idx = np.rint(A[:, 0]).astype(int)
+        rows = np.arange(len(S))
+        f = ref.F(S, idx[:, None].astype(np.float64), Z)
+        scale = np.abs(f).max(axis=1) * np.abs(Z).sum(axis=1)
+        assert np.all(q_all[rows, idx_r] - q_all[rows, idx] <= rel * scale)
+        assert np.mean(idx == idx_r) > 0.9
+        assert np.max(np.abs(V - q_all[rows, idx]) / scale) < rel
+
+    # The policy ran once per batch: exactly the acted states, in fewer passes than states.
+    states_total = metric(port, "veer_act_policy_states_total")
+    passes = metric(port, "veer_act_policy_passes_total")
+    assert states_total == len(acted)
+    assert passes < states_total, "no two queued acts were answered together"
