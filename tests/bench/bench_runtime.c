@@ -411,6 +411,73 @@ static void bench_act(const char *label, const veer_bundle *bundle, const Veer__
     veer_workspace_destroy(a.ws);
 }
 
+/* ---- acts answered together ------------------------------------------------------------ */
+
+/* What veerd's --act-batch trades: one veer_act_each over n states (a task vector each, as
+ * queued acts of different channels have) against n veer_act calls one after the other, both
+ * hot (back to back) and cold (after sweeping a buffer larger than the last-level cache, as an
+ * act thread finds its caches after the idle part of a 1 ms period). */
+#define BATCH_SWEEP_BYTES (64u << 20)
+
+static void sweep(volatile unsigned char *buf)
+{
+    for (size_t i = 0; i < BATCH_SWEEP_BYTES; i += 64)
+        buf[i]++;
+}
+
+static void bench_batch(const char *label, const veer_bundle *bundle, const float *z)
+{
+    const veer_model_info *info = veer_bundle_info(bundle);
+    enum { NMAX = 8, CALLS = 400 };
+    veer_workspace *ws = NULL;
+    veer_error err;
+    if (veer_workspace_create(bundle, NMAX, &ws, &err) != 0) {
+        printf("  %s: workspace: %s\n", label, err.message);
+        return;
+    }
+    float *states = random_floats((size_t)NMAX * info->state_dim);
+    float *zs = malloc(sizeof(float) * NMAX * info->z_dim);
+    float *actions = malloc(sizeof(float) * NMAX * info->action_dim);
+    float values[NMAX];
+    uint32_t flags[NMAX];
+    unsigned char *buf = calloc(BATCH_SWEEP_BYTES, 1);
+    uint64_t *one = malloc(sizeof(uint64_t) * CALLS), *each = malloc(sizeof(uint64_t) * CALLS);
+    for (int i = 0; i < NMAX; i++)
+        memcpy(zs + (size_t)i * info->z_dim, z, info->z_dim * sizeof(float));
+    static const int sizes[3] = {2, 4, 8};
+    for (int cold = 0; cold < 2; cold++) {
+        for (int k = 0; k < 3; k++) {
+            int n = sizes[k];
+            for (int c = 0; c < CALLS; c++) {
+                /* Alternating the two ways call by call, so drift of the host falls on both. */
+                if (cold)
+                    sweep(buf);
+                uint64_t t0 = veer__now_ns();
+                for (int i = 0; i < n; i++)
+                    veer_act(ws, states + (size_t)i * info->state_dim, zs + (size_t)i * info->z_dim,
+                             actions + (size_t)i * info->action_dim, &values[i], &flags[i]);
+                one[c] = veer__now_ns() - t0;
+                if (cold)
+                    sweep(buf);
+                t0 = veer__now_ns();
+                veer_act_each(ws, (size_t)n, states, zs, actions, values, flags);
+                each[c] = veer__now_ns() - t0;
+            }
+            double o50 = percentile_us(one, CALLS, 0.50), e50 = percentile_us(each, CALLS, 0.50);
+            printf("  %-9s %s n=%d: %d x veer_act p50 %8.2f us | one veer_act_each p50 %8.2f us | "
+                   "ratio %.2f\n",
+                   label, cold ? "cold" : "hot ", n, n, o50, e50, e50 / o50);
+        }
+    }
+    free(one);
+    free(each);
+    free(buf);
+    free(states);
+    free(zs);
+    free(actions);
+    veer_workspace_destroy(ws);
+}
+
 /* ---- task encoding ------------------------------------------------------------------- */
 
 /* Wall time and this thread's CPU time of one run. On a loaded machine the CPU time leaves
@@ -640,6 +707,10 @@ int main(int argc, char **argv)
     printf("\nsingle-state act latency (veer_act vs F's linear layers as bare cblas calls):\n");
     for (int i = 0; i < 2; i++)
         bench_act(labels[i], bundles[i], files[i].model, zs[i]);
+
+    printf("\nacts answered together (veerd --act-batch): n states in one veer_act_each, a task "
+           "vector each, against n veer_act calls; hot, and cold after a 64 MiB sweep:\n");
+    bench_batch(labels[0], bundles[0], zs[0]);
 
     printf("\ntask encoding from reward samples (veer_task_encode with / without the R2 report, "
            "vs B's linear layers as bare sgemm; wall times):\n");

@@ -35,7 +35,10 @@
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
+#include <arpa/inet.h>
+#include <netinet/in.h>
 #include <sys/prctl.h>
+#include <sys/socket.h>
 #include <sys/wait.h>
 #include <time.h>
 #include <unistd.h>
@@ -453,8 +456,38 @@ static double throughput(void *ctx, const target *t)
 
 /* ---- veerd ----------------------------------------------------------------------------------- */
 
+/* One unlabelled counter from veerd's /metrics on 127.0.0.1:port (a plain HTTP/1.0 GET; the
+ * Prometheus text format puts it on a line of its own as "name value"). -1 when unreadable. */
+static double veerd_metric(int port, const char *name)
+{
+    int fd = socket(AF_INET, SOCK_STREAM, 0);
+    struct sockaddr_in sa = {.sin_family = AF_INET, .sin_port = htons((uint16_t)port)};
+    sa.sin_addr.s_addr = htonl(INADDR_LOOPBACK);
+    static char text[1 << 17];
+    size_t len = 0;
+    if (fd < 0 || connect(fd, (struct sockaddr *)&sa, sizeof sa) != 0) {
+        if (fd >= 0)
+            close(fd);
+        return -1;
+    }
+    static const char get[] = "GET /metrics HTTP/1.0\r\nHost: 127.0.0.1\r\n\r\n";
+    if (write(fd, get, sizeof get - 1) != (ssize_t)(sizeof get - 1)) {
+        close(fd);
+        return -1;
+    }
+    ssize_t got;
+    while (len < sizeof text - 1 && (got = read(fd, text + len, sizeof text - 1 - len)) > 0)
+        len += (size_t)got;
+    close(fd);
+    text[len] = '\0';
+    char key[128];
+    snprintf(key, sizeof key, "\n%s ", name);
+    const char *at = strstr(text, key);
+    return at != NULL ? atof(at + strlen(key)) : -1;
+}
+
 static pid_t start_veerd(const char *veerd, const char *bundle, const char *dir, const char *act,
-                         const char *admin, const char *events)
+                         const char *admin, const char *events, const char *http)
 {
     pid_t pid = fork();
     if (pid == 0) {
@@ -463,9 +496,10 @@ static pid_t start_veerd(const char *veerd, const char *bundle, const char *dir,
         snprintf(log, sizeof log, "%s/veerd.log", dir);
         if (freopen(log, "w", stderr) == NULL)
             _exit(1);
-        const char *argv[24] = {veerd, "--bundle", bundle, "--state-dir", state, "--act",
-                                act,   "--admin",  admin,  "--events",    events};
-        int n = 11;
+        const char *argv[24] = {veerd,   "--bundle", bundle,    "--state-dir", state,
+                                "--act", act,        "--admin", admin,         "--events",
+                                events,  "--http",   http};
+        int n = 13;
         for (int i = 0; i < veerd_extra_n; i++)
             argv[n++] = veerd_extra[i];
         argv[n] = NULL;
@@ -537,7 +571,11 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
         snprintf(gap_ep, sizeof gap_ep, "ipc://%s/echo-gap", dir);
         snprintf(pol_ep, sizeof pol_ep, "ipc://%s/echo-policy", dir);
     }
-    pid_t pid = start_veerd(veerd, bundle_path, dir, act, admin, events);
+    /* veerd's /metrics, read for its policy passes (the mean batch under --act-batch). */
+    int http_port = 20000 + (int)(getpid() % 20000) + (strcmp(transport, "tcp") == 0 ? 6 : 7);
+    char http[64];
+    snprintf(http, sizeof http, "127.0.0.1:%d", http_port);
+    pid_t pid = start_veerd(veerd, bundle_path, dir, act, admin, events, http);
     void *ctx = zmq_ctx_new();
     void *adm = dealer(ctx, admin);
     Veer__Wire__Request q = VEER__WIRE__REQUEST__INIT;
@@ -663,6 +701,8 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
     target tp = tv;
     tp.act = pol_ep;
     uint64_t ticks = (uint64_t)(seconds_paced * 1000.0 / paced_rounds);
+    double passes0 = veerd_metric(http_port, "veer_act_policy_passes_total");
+    double states0 = veerd_metric(http_port, "veer_act_policy_states_total");
     char per_round[768];
     size_t used = 0;
     for (int round = 0; round < paced_rounds; round++) {
@@ -682,9 +722,15 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
         if (used >= sizeof per_round)
             used = sizeof per_round - 1;
     }
+    double passes1 = veerd_metric(http_port, "veer_act_policy_passes_total");
+    double states1 = veerd_metric(http_port, "veer_act_policy_states_total");
     printf("  paced: %d controllers x 1 kHz x %.0f s each, deadline 1 ms, latency from the "
            "scheduled send; %d rounds of %.1f s, in rotating order\n",
            CONTROLLERS, seconds_paced, paced_rounds, (double)ticks / 1000.0);
+    if (passes0 >= 0 && passes1 > passes0)
+        printf("  veerd's policy passes in the paced rounds: %.0f for %.0f states (mean batch "
+               "%.2f)\n",
+               passes1 - passes0, states1 - states0, (states1 - states0) / (passes1 - passes0));
     if (!with_pol)
         printf("  (the policy echo is left out: %d x inference p50 fills half the period)\n",
                CONTROLLERS);
@@ -714,9 +760,17 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
                miss_p / miss_e, miss_v / miss_p);
 
     /* 5. Throughput. */
-    double thr_e = throughput(ctx, &tce), thr_v = throughput(ctx, &tc);
-    printf("  throughput (%d DEALERs x %d in flight): echo %.0f/s, veerd %.0f/s\n", CONTROLLERS,
+    double thr_e = throughput(ctx, &tce);
+    passes0 = veerd_metric(http_port, "veer_act_policy_passes_total");
+    states0 = veerd_metric(http_port, "veer_act_policy_states_total");
+    double thr_v = throughput(ctx, &tc);
+    passes1 = veerd_metric(http_port, "veer_act_policy_passes_total");
+    states1 = veerd_metric(http_port, "veer_act_policy_states_total");
+    printf("  throughput (%d DEALERs x %d in flight): echo %.0f/s, veerd %.0f/s", CONTROLLERS,
            WINDOW, thr_e, thr_v);
+    if (passes0 >= 0 && passes1 > passes0)
+        printf(" (mean batch %.2f)", (states1 - states0) / (passes1 - passes0));
+    printf("\n");
 
     /* 6. The targets, as ratios to this run's floor. */
     double inf50 = (double)pct(inference, 50), inf999 = (double)pct(inference, 99.9);
