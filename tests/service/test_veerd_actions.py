@@ -269,7 +269,8 @@ def metric(port, name):
 def test_batched_acts_match_reference(bundle, start):
     """--act-batch 8: a burst of acts on three channels with three tasks, sent without waiting so
     that they queue and are answered in batches (one veer_act_each per batch), with requests for
-    a channel with no task, of a wrong state length and a describe mixed in. Every reply comes
+    a channel with no task, of a wrong state length, with a NaN, undecodable bytes and a
+    describe mixed in. Every reply comes
     back, in the order sent; errors and fallbacks are the ones a single act would give; every
     action and value equals the independent NumPy forward pass (veer.reference, the reference
     of tests/reference/test_networks.py) for the state and its channel's task within 1e-5
@@ -293,6 +294,12 @@ def test_batched_acts_match_reference(bundle, start):
         state = bundle.states[200 + i]
         if i % 29 == 7:
             kind, q = "short", c.act_request("cell-0", state[:-1], seq=i, deadline_us=2000000)
+        elif i % 31 == 11:
+            bad = state.copy()
+            bad[3] = np.nan
+            kind, q = "nan", c.act_request("cell-1", bad, seq=i, deadline_us=2000000)
+        elif i % 37 == 13:
+            kind, q = "garbage", None
         elif i % 17 == 5:
             kind, q = "idle", c.act_request("idle", state, seq=i, deadline_us=2000000)
         elif i == 100:
@@ -300,10 +307,13 @@ def test_batched_acts_match_reference(bundle, start):
             q.describe.SetInParent()
         else:
             kind, q = "act", c.act_request(f"cell-{i % 3}", state, seq=i, deadline_us=2000000)
-        q.protocol, q.id = 1, 1000 + i
         kinds.append(kind)
         states.append(state)
         chans.append(f"cell-{i % 3}")
+        if q is None:  # bytes that do not decode as a Request (a truncated varint)
+            payloads.append(b"\x08\xff\xff\xff")
+            continue
+        q.protocol, q.id = 1, 1000 + i
         payloads.append(q.SerializeToString())
     for p in payloads:  # all at once: the act thread finds them queued
         c.act.send(p)
@@ -313,13 +323,18 @@ def test_batched_acts_match_reference(bundle, start):
         r = harness.wire.Reply()
         r.ParseFromString(c.act.recv())
         replies.append(r)
-    assert [r.id for r in replies] == [1000 + i for i in range(n)], "replies out of order"
+    want_ids = [0 if kinds[i] == "garbage" else 1000 + i for i in range(n)]
+    assert [r.id for r in replies] == want_ids, "replies out of order"
 
     acted = [i for i in range(n) if kinds[i] == "act"]
     for i in range(n):
         r = replies[i]
         if kinds[i] == "short":
             expect_error(r, "EDIM", "act.state")
+        elif kinds[i] == "nan":
+            expect_error(r, "ENONFINITE", "act.state[3]")
+        elif kinds[i] == "garbage":
+            expect_error(r, "EBADMSG", "request")
         elif kinds[i] == "idle":
             assert r.act.flags == ACT_FALLBACK | ACT_NO_TASK and r.act.seq == i
         elif kinds[i] == "describe":

@@ -117,6 +117,8 @@ def test_loopback_admin_accepted(continuous_bundle, start, tmp_path, kind):
     (["--act-auth=maybe"], {}, "--act-auth"),
     (["--deadline-percentile", "49"], {}, "--deadline-percentile"),
     ([], {"VEER_DEADLINE_PERCENTILE": "101"}, "--deadline-percentile"),
+    (["--act-batch", "0"], {}, "--act-batch"),
+    ([], {"VEER_ACT_BATCH": "17"}, "--act-batch"),
 ])
 def test_bad_configuration_exits_2(continuous_bundle, tmp_path, args, env, flag):
     r = run_veerd(["--bundle", str(continuous_bundle.path), "--state-dir", str(tmp_path / "s"), *args], env)
@@ -150,7 +152,7 @@ def test_help_explains_every_flag():
     for flag in ["--bundle", "--state-dir", "--act", "--admin", "--events", "--http", "--default-deadline-us",
                  "--max-message-bytes", "--act-max-message-bytes", "--max-samples", "--max-tasks",
                  "--max-channels", "--journal-compact-bytes", "--server-key", "--allowed-keys", "--act-auth",
-                 "--deadline-percentile"]:
+                 "--deadline-percentile", "--act-batch"]:
         assert f"  {flag} " in r.stdout, flag
     for var in ["VEER_BUNDLE", "VEER_ADMIN", "VEER_STATE_DIR", "VEER_SERVER_KEY"]:
         assert var in r.stdout
