@@ -166,26 +166,23 @@ class Runtime:
                     "veer_eval_actor")
         return out
 
-    def act_batch(self, states, z):
-        s, zz = f32(states), f32(z)
-        n = s.shape[0]
-        a = np.zeros((n, self.adim), np.float32)
-        v = np.zeros(n, np.float32)
-        fl = np.zeros(n, np.uint32)
-        self._check(self.lib.veer_act_batch(self.ws, n, ptr(s), ptr(zz), ptr(a), ptr(v),
-                                            fl.ctypes.data_as(U32P)), "veer_act_batch")
-        return a, v, fl
-
-    def act_each(self, states, zs):
-        """veer_act_each: row i of zs is the task of state i."""
+    def _act_rows(self, name, states, zs):
         s, zz = f32(states), f32(zs)
         n = s.shape[0]
         a = np.zeros((n, self.adim), np.float32)
         v = np.zeros(n, np.float32)
         fl = np.zeros(n, np.uint32)
-        self._check(self.lib.veer_act_each(self.ws, n, ptr(s), ptr(zz), ptr(a), ptr(v),
-                                           fl.ctypes.data_as(U32P)), "veer_act_each")
+        self._check(getattr(self.lib, name)(self.ws, n, ptr(s), ptr(zz), ptr(a), ptr(v),
+                                            fl.ctypes.data_as(U32P)), name)
         return a, v, fl
+
+    def act_batch(self, states, z):
+        """veer_act_batch: one task vector z for every state."""
+        return self._act_rows("veer_act_batch", states, z)
+
+    def act_each(self, states, zs):
+        """veer_act_each: row i of zs is the task of state i."""
+        return self._act_rows("veer_act_each", states, zs)
 
     def act(self, state, z):
         s, zz = f32(state), f32(z)
