@@ -1,9 +1,9 @@
 /* The act thread (see act.h for the contract).
  *
  * Each wake-up serves a batch in three phases: take the request that woke the thread and up to
- * batch_max - 1 more already queued (never waiting for one), decode and check them all, run the
- * policy once over the states that need it (veer_act_each, a task vector per state), then
- * answer in arrival order. With batch_max 1, the default, that is one request at a time. A
+ * batch_max - 1 more already queued (never waiting for one), decode and check them all and
+ * answer those that need no policy, run the policy once over the states that do (veer_act_each,
+ * a task vector per state), then answer those. With batch_max 1, the default, that is one request at a time. A
  * batch helps when controllers tick in phase: for a discrete model one pass over 4 states costs
  * about half of 4 single acts, and the last of four requests no longer waits for three passes.
  *
@@ -393,17 +393,22 @@ static void reply(veer__act *a, act_slot *s)
     }
 }
 
-/* Serves the n requests in slots[0..n): decode and check them all, evaluate the policy once for
- * those that need it, then answer in arrival order. With --act-batch 1 this is one request at a
- * time. */
+/* Serves the n requests in slots[0..n): decode and check them all, answer at once those that
+ * need no policy (errors, describes, no task, predicted late: a fallback must not wait for
+ * other requests' pass), evaluate the policy once for the rest, then answer those; each group in
+ * arrival order. With --act-batch 1 this is one request at a time. */
 static void serve_batch(veer__act *a, uint32_t n)
 {
     a->batch_rows = 0;
     for (uint32_t i = 0; i < n; i++)
         take(a, &a->slots[i]);
+    for (uint32_t i = 0; i < n; i++)
+        if (a->slots[i].row < 0)
+            reply(a, &a->slots[i]);
     evaluate(a, a->slots, n);
     for (uint32_t i = 0; i < n; i++)
-        reply(a, &a->slots[i]);
+        if (a->slots[i].row >= 0)
+            reply(a, &a->slots[i]);
     veer__arena_reset(&a->arena);
 }
 

@@ -5,7 +5,8 @@
  * into a preallocated buffer: no allocation of ours, no lock that admin work can hold, no
  * logging. It answers Act and Describe; anything else gets an EMSGTYPE error naming the admin
  * socket. With batch_max above 1 it takes the requests already queued together (up to
- * batch_max), evaluates the policy once for all of them and answers in arrival order.
+ * batch_max), answers at once those that need no policy (errors, describes, no task, predicted
+ * late), evaluates the policy once for the others and then answers them.
  *
  * Deadlines. The deadline counts from the moment the thread takes the request off the socket
  * (time spent queued inside libzmq before that is invisible to the server; the client's own

@@ -60,8 +60,8 @@ static const opt_desc OPTIONS[] = {
      "the price of a busy core: use it only with a core to spare for the act thread."},
     {"--act-batch", "VEER_ACT_BATCH", OPT_U32, OFF(act_batch), "1", 1, 16, 0,
      "Most act requests the act thread answers together: those already queued when it takes\n"
-     "one are decoded, evaluated in one pass of the networks and answered in arrival order\n"
-     "(1: one at a time). For discrete models a pass over several states costs less than\n"
+     "one are decoded and checked, those that need the policy evaluated in one pass of the\n"
+     "networks (1: one at a time; errors and fallbacks are answered before the pass). For discrete models a pass over several states costs less than\n"
      "that many single acts, so controllers ticking in phase wait less; continuous models\n"
      "gain nothing. Batched values can differ from single acts' in the last bits."},
     {"--act-priority", "VEER_ACT_PRIORITY", OPT_U32, OFF(act_priority), "0", 0, 99, 0,

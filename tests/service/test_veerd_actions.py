@@ -270,12 +270,12 @@ def test_batched_acts_match_reference(bundle, start):
     """--act-batch 8: a burst of acts on three channels with three tasks, sent without waiting so
     that they queue and are answered in batches (one veer_act_each per batch), with requests for
     a channel with no task, of a wrong state length, with a NaN, undecodable bytes and a
-    describe mixed in. Every reply comes
-    back, in the order sent; errors and fallbacks are the ones a single act would give; every
-    action and value equals the independent NumPy forward pass (veer.reference, the reference
-    of tests/reference/test_networks.py) for the state and its channel's task within 1e-5
-    (normwise relative, Higham 2nd ed. section 1.2; for discrete models the argmax may differ
-    only between actions whose Q tie within that tolerance)."""
+    describe mixed in. Every reply comes back (in each batch those that need no policy before
+    the pass, the policy's acts in the order sent); errors and fallbacks are the ones a single
+    act would give; every action and value equals the independent NumPy forward pass
+    (veer.reference, the reference of tests/reference/test_networks.py) for the state and its
+    channel's task within 1e-5 (normwise relative, Higham 2nd ed. section 1.2; for discrete
+    models the argmax may differ only between actions whose Q tie within that tolerance)."""
     from veer import bundle as vb
     port = harness.free_port()
     d, c = start(bundle, "tcp", ("--act-batch", "8", "--http", f"127.0.0.1:{port}"))
@@ -323,8 +323,16 @@ def test_batched_acts_match_reference(bundle, start):
         r = harness.wire.Reply()
         r.ParseFromString(c.act.recv())
         replies.append(r)
-    want_ids = [0 if kinds[i] == "garbage" else 1000 + i for i in range(n)]
-    assert [r.id for r in replies] == want_ids, "replies out of order"
+    # Each batch answers what needs no policy first, then the policy's acts: every id once, and
+    # the acts of the policy in the order sent (undecodable bytes get id 0).
+    ids = [r.id for r in replies]
+    assert sorted(i for i in ids if i) == [1000 + i for i in range(n) if kinds[i] != "garbage"]
+    assert ids.count(0) == kinds.count("garbage")
+    acted_ids = [i for i in ids if i and kinds[i - 1000] == "act"]
+    assert acted_ids == sorted(acted_ids), "the policy's acts were answered out of order"
+    by_id = {r.id: r for r in replies if r.id}
+    garbage = [r for r in replies if r.id == 0]
+    replies = [garbage.pop() if kinds[i] == "garbage" else by_id[1000 + i] for i in range(n)]
 
     acted = [i for i in range(n) if kinds[i] == "act"]
     for i in range(n):
