@@ -60,10 +60,11 @@ static const opt_desc OPTIONS[] = {
      "the price of a busy core: use it only with a core to spare for the act thread."},
     {"--act-batch", "VEER_ACT_BATCH", OPT_U32, OFF(act_batch), "1", 1, 16, 0,
      "Most act requests the act thread answers together: those already queued when it takes\n"
-     "one are decoded and checked, those that need the policy evaluated in one pass of the\n"
-     "networks (1: one at a time; errors and fallbacks are answered before the pass). For discrete models a pass over several states costs less than\n"
-     "that many single acts, so controllers ticking in phase wait less; continuous models\n"
-     "gain nothing. Batched values can differ from single acts' in the last bits."},
+     "one are decoded and checked, and those that need the policy are evaluated in one pass\n"
+     "of the networks (1: one at a time; errors and fallbacks are answered before the pass).\n"
+     "For discrete models a pass over several states costs less than that many single acts,\n"
+     "so controllers ticking in phase wait less; continuous models gain nothing. Batched\n"
+     "values can differ from single acts' in the last bits."},
     {"--act-priority", "VEER_ACT_PRIORITY", OPT_U32, OFF(act_priority), "0", 0, 99, 0,
      "SCHED_FIFO priority (1 to 99) for the act thread and libzmq's I/O threads, so other work\n"
      "on the machine cannot delay an act (0: ordinary scheduling). Needs CAP_SYS_NICE or an\n"

@@ -486,6 +486,13 @@ static double veerd_metric(int port, const char *name)
     return at != NULL ? atof(at + strlen(key)) : -1;
 }
 
+/* veerd's policy passes and the states they covered so far: out[0], out[1] (-1 when unread). */
+static void veerd_passes(int port, double out[2])
+{
+    out[0] = veerd_metric(port, "veer_act_policy_passes_total");
+    out[1] = veerd_metric(port, "veer_act_policy_states_total");
+}
+
 static pid_t start_veerd(const char *veerd, const char *bundle, const char *dir, const char *act,
                          const char *admin, const char *events, const char *http)
 {
@@ -701,8 +708,8 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
     target tp = tv;
     tp.act = pol_ep;
     uint64_t ticks = (uint64_t)(seconds_paced * 1000.0 / paced_rounds);
-    double passes0 = veerd_metric(http_port, "veer_act_policy_passes_total");
-    double states0 = veerd_metric(http_port, "veer_act_policy_states_total");
+    double before[2], after[2];
+    veerd_passes(http_port, before);
     char per_round[768];
     size_t used = 0;
     for (int round = 0; round < paced_rounds; round++) {
@@ -722,15 +729,15 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
         if (used >= sizeof per_round)
             used = sizeof per_round - 1;
     }
-    double passes1 = veerd_metric(http_port, "veer_act_policy_passes_total");
-    double states1 = veerd_metric(http_port, "veer_act_policy_states_total");
+    veerd_passes(http_port, after);
     printf("  paced: %d controllers x 1 kHz x %.0f s each, deadline 1 ms, latency from the "
            "scheduled send; %d rounds of %.1f s, in rotating order\n",
            CONTROLLERS, seconds_paced, paced_rounds, (double)ticks / 1000.0);
-    if (passes0 >= 0 && passes1 > passes0)
+    if (before[0] >= 0 && after[0] > before[0])
         printf("  veerd's policy passes in the paced rounds: %.0f for %.0f states (mean batch "
                "%.2f)\n",
-               passes1 - passes0, states1 - states0, (states1 - states0) / (passes1 - passes0));
+               after[0] - before[0], after[1] - before[1],
+               (after[1] - before[1]) / (after[0] - before[0]));
     if (!with_pol)
         printf("  (the policy echo is left out: %d x inference p50 fills half the period)\n",
                CONTROLLERS);
@@ -761,15 +768,13 @@ static int bench_one(const char *veerd, const char *bundle_path, const char *tra
 
     /* 5. Throughput. */
     double thr_e = throughput(ctx, &tce);
-    passes0 = veerd_metric(http_port, "veer_act_policy_passes_total");
-    states0 = veerd_metric(http_port, "veer_act_policy_states_total");
+    veerd_passes(http_port, before);
     double thr_v = throughput(ctx, &tc);
-    passes1 = veerd_metric(http_port, "veer_act_policy_passes_total");
-    states1 = veerd_metric(http_port, "veer_act_policy_states_total");
+    veerd_passes(http_port, after);
     printf("  throughput (%d DEALERs x %d in flight): echo %.0f/s, veerd %.0f/s", CONTROLLERS,
            WINDOW, thr_e, thr_v);
-    if (passes0 >= 0 && passes1 > passes0)
-        printf(" (mean batch %.2f)", (states1 - states0) / (passes1 - passes0));
+    if (before[0] >= 0 && after[0] > before[0])
+        printf(" (mean batch %.2f)", (after[1] - before[1]) / (after[0] - before[0]));
     printf("\n");
 
     /* 6. The targets, as ratios to this run's floor. */
