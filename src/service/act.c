@@ -25,6 +25,7 @@
 #include <string.h>
 
 #include "base/base.h"
+#include "service/act_split.h"
 #include "service/arena.h"
 #include "service/auth.h"
 #include "service/log.h"
@@ -71,6 +72,7 @@ struct veer__act {
     atomic_int stop;
 
     veer_workspace *ws;
+    veer__act_split *split; /* NULL: the pass runs on this thread alone */
     veer__arena arena; /* room for batch_max requests; reset after each batch */
     act_slot *slots;   /* batch_max */
     uint32_t batch_max;
@@ -281,27 +283,20 @@ static void evaluate(veer__act *a, act_slot *slots, uint32_t n)
     uint32_t rows = a->batch_rows;
     if (rows == 0)
         return;
-    const veer_model_info *info = a->info;
     int probe = 0;
     for (uint32_t i = 0; i < n; i++)
         probe |= slots[i].row >= 0 && slots[i].predicted_late;
+    veer__act_rows batch = {.n = rows,
+                            .states = a->batch_states,
+                            .zs = a->batch_zs,
+                            .actions = a->batch_actions,
+                            .values = a->batch_values,
+                            .flags = a->batch_flags};
     uint64_t t1 = veer__now_ns();
-    int rc = veer_act_each(a->ws, rows, a->batch_states, a->batch_zs, a->batch_actions,
-                           a->batch_values, a->batch_flags);
-    if (rc < 0) {
-        /* One state the model refuses (an embedding index out of range) fails the whole call:
-         * redo the rows one by one so that only that state gets the fallback. */
-        for (uint32_t r = 0; r < rows; r++) {
-            float *act = a->batch_actions + (size_t)r * info->action_dim;
-            if (veer_act_each(a->ws, 1, a->batch_states + (size_t)r * info->state_dim,
-                              a->batch_zs + (size_t)r * info->z_dim, act, &a->batch_values[r],
-                              &a->batch_flags[r]) < 0) {
-                memcpy(act, info->fallback_action, info->action_dim * sizeof(float));
-                a->batch_values[r] = 0.0f;
-                a->batch_flags[r] = VEER_ACT_FALLBACK | VEER_ACT_NONFINITE;
-            }
-        }
-    }
+    if (a->split != NULL)
+        veer__act_split_run(a->split, a->ws, &batch);
+    else
+        veer__act_rows_eval(a->info, a->ws, &batch);
     uint64_t t2 = veer__now_ns();
     count(&a->policy_passes);
     atomic_fetch_add_explicit(&a->policy_states, rows, memory_order_relaxed);
@@ -484,6 +479,7 @@ static void act_free(veer__act *a)
     veer__free(a->batch_actions);
     veer__free(a->batch_values);
     veer__free(a->batch_flags);
+    veer__act_split_stop(a->split); /* the act thread has stopped: no pass is running */
     veer_workspace_destroy(a->ws);
     veer__arena_free(&a->arena);
     veer_drift_destroy(a->drift);
@@ -544,6 +540,10 @@ int veer__act_start(const veer__act_config *cfg, veer__act **out, veer_error *er
     }
     if ((rc = veer_workspace_create(cfg->bundle, a->batch_max, &a->ws, err)) < 0)
         goto fail;
+    if (cfg->threads > 1 &&
+        (rc = veer__act_split_start(cfg->bundle, cfg->threads - 1, a->batch_max, cfg->spin_us,
+                                    cfg->priority, &a->split, err)) < 0)
+        goto fail;
     for (int i = 0; i < VEER__ACT_STAGE_COUNT + VEER__ACT_CHANNEL_HISTS && !cfg->monitors_off; i++) {
         veer_hist_recorder **r =
             i < VEER__ACT_STAGE_COUNT ? &a->stage[i] : &a->channel_latency[i - VEER__ACT_STAGE_COUNT];
@@ -580,13 +580,7 @@ int veer__act_start(const veer__act_config *cfg, veer__act **out, veer_error *er
      * another thread. */
     pthread_attr_t attr;
     pthread_attr_init(&attr);
-    if (cfg->priority != 0) {
-        /* Set at creation, so the thread never serves a request at ordinary priority. */
-        struct sched_param sp = {.sched_priority = (int)cfg->priority};
-        pthread_attr_setinheritsched(&attr, PTHREAD_EXPLICIT_SCHED);
-        pthread_attr_setschedpolicy(&attr, SCHED_FIFO);
-        pthread_attr_setschedparam(&attr, &sp);
-    }
+    veer__rt_attr_fifo(&attr, cfg->priority);
     int prc = pthread_create(&a->thread, &attr, act_main, a);
     pthread_attr_destroy(&attr);
     if (prc != 0) {

@@ -6,7 +6,8 @@
  * logging. It answers Act and Describe; anything else gets an EMSGTYPE error naming the admin
  * socket. With batch_max above 1 it takes the requests already queued together (up to
  * batch_max), answers at once those that need no policy (errors, describes, no task, predicted
- * late), evaluates the policy once for the others and then answers them.
+ * late), evaluates the policy once for the others and then answers them. With threads above 1
+ * that pass is shared with helper threads (act_split.h); everything else stays on this thread.
  *
  * Deadlines. The deadline counts from the moment the thread takes the request off the socket
  * (time spent queued inside libzmq before that is invisible to the server; the client's own
@@ -44,6 +45,7 @@ typedef struct veer__act_config {
     uint32_t deadline_percentile;     /* 50..100; 0 means 99 */
     uint32_t spin_us;                 /* poll this long without sleeping before blocking */
     uint32_t batch_max;               /* requests answered together at most; 0 or 1: one by one */
+    uint32_t threads;                 /* threads sharing a batch's pass (act_split.h); 0, 1: one */
     uint32_t priority;                /* SCHED_FIFO priority of the thread; 0: ordinary */
     int pin;                          /* 1: the thread pins itself to `cpu` before serving */
     uint32_t cpu;

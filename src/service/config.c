@@ -65,6 +65,13 @@ static const opt_desc OPTIONS[] = {
      "For discrete models a pass over several states costs less than that many single acts,\n"
      "so controllers ticking in phase wait less; continuous models gain nothing. Batched\n"
      "values can differ from single acts' in the last bits."},
+    {"--act-threads", "VEER_ACT_THREADS", OPT_U32, OFF(act_threads), "1", 1, 4, 0,
+     "Threads that share the policy pass of a batch (1: the act thread alone). Each added\n"
+     "thread has its own workspace and computes a block of the batch's states. It pays only\n"
+     "when a state's compute is long against waking a thread: on 2 cores, 4 to 8 states of a\n"
+     "2 ms model took 0.62-0.73 of one thread's time, and a 33 us model got 1.1-1.9x slower\n"
+     "(tests/bench/bench_act_split.c). Needs --act-batch 2 or more; an idle helper polls for\n"
+     "--act-spin-us, then sleeps."},
     {"--act-priority", "VEER_ACT_PRIORITY", OPT_U32, OFF(act_priority), "0", 0, 99, 0,
      "SCHED_FIFO priority (1 to 99) for the act thread and libzmq's I/O threads, so other work\n"
      "on the machine cannot delay an act (0: ordinary scheduling). Needs CAP_SYS_NICE or an\n"
@@ -218,6 +225,11 @@ static int check_whole(veer__config *cfg, const int given[OPTION_COUNT], veer_er
                                "--allowed-keys needs --server-key: the server's secret key file");
     if (cfg->act_auth && cfg->server_key_path[0] == '\0')
         return veer__error_set(err, VEER_ECONFIG, "--act-auth", "--act-auth needs --server-key and --allowed-keys");
+    if (cfg->act_threads > 1 && cfg->act_batch < 2)
+        return veer__error_set(err, VEER_ECONFIG, "--act-threads",
+                               "--act-threads %u needs --act-batch 2 or more: the threads share "
+                               "the pass over a batch's states",
+                               cfg->act_threads);
     if ((rc = optional_u32("--act-cpu", cfg->act_cpu, 1023, "a CPU number", &cfg->act_cpu_on,
                            &cfg->act_cpu_index, err)) < 0 ||
         (rc = optional_u32("--cpu-latency-us", cfg->cpu_latency, 100000, "microseconds", &cfg->cpu_latency_on,

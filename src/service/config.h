@@ -25,6 +25,7 @@ typedef struct veer__config {
     uint32_t deadline_percentile;  /* of policy time, predicting whether an act finishes late */
     uint32_t act_spin_us;          /* act thread: poll this long before blocking (0: never) */
     uint32_t act_batch;            /* act thread: queued requests answered together, at most */
+    uint32_t act_threads;          /* act thread and helpers sharing a batch's pass */
     uint32_t act_priority;         /* SCHED_FIFO priority of the act and libzmq threads (0: off) */
     char act_cpu[VEER__CONFIG_STR_MAX];     /* as given; "" when not pinned */
     int act_cpu_on;                /* 1: pin the act thread and libzmq's I/O threads */

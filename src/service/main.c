@@ -270,6 +270,7 @@ int main(int argc, char **argv)
                              .deadline_percentile = d.cfg.deadline_percentile,
                              .spin_us = d.cfg.act_spin_us,
                              .batch_max = d.cfg.act_batch,
+                             .threads = d.cfg.act_threads,
                              .priority = d.cfg.act_priority,
                              .pin = d.cfg.act_cpu_on,
                              .cpu = d.cfg.act_cpu_index,

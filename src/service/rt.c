@@ -40,6 +40,16 @@ int veer__rt_set_fifo(uint32_t priority, veer_error *err)
     return 0;
 }
 
+void veer__rt_attr_fifo(pthread_attr_t *attr, uint32_t priority)
+{
+    if (priority == 0)
+        return;
+    struct sched_param sp = {.sched_priority = (int)priority};
+    pthread_attr_setinheritsched(attr, PTHREAD_EXPLICIT_SCHED);
+    pthread_attr_setschedpolicy(attr, SCHED_FIFO);
+    pthread_attr_setschedparam(attr, &sp);
+}
+
 int veer__rt_zmq_fifo(void *zctx, uint32_t priority, veer_error *err)
 {
     if (zmq_ctx_set(zctx, ZMQ_THREAD_SCHED_POLICY, SCHED_FIFO) != 0 ||

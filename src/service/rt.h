@@ -11,6 +11,7 @@
 #ifndef VEER_SERVICE_RT_H
 #define VEER_SERVICE_RT_H
 
+#include <pthread.h>
 #include <stdint.h>
 
 #include "veer/error.h"
@@ -22,6 +23,10 @@ int veer__rt_check_fifo(uint32_t priority, const char *flag, veer_error *err);
 
 /* Puts the calling thread at SCHED_FIFO `priority`. */
 int veer__rt_set_fifo(uint32_t priority, veer_error *err);
+
+/* Makes threads created with `attr` start at SCHED_FIFO `priority` (0: leaves attr as it is), so
+ * they never run a request at ordinary priority. Call after veer__rt_check_fifo succeeded. */
+void veer__rt_attr_fifo(pthread_attr_t *attr, uint32_t priority);
 
 /* Makes the I/O threads of the ZeroMQ context `zctx` start at SCHED_FIFO `priority`. Call before
  * the context's first socket, after veer__rt_check_fifo succeeded. */

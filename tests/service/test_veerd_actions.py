@@ -266,8 +266,9 @@ def metric(port, name):
     raise KeyError(name)
 
 
-def test_batched_acts_match_reference(bundle, start):
-    """--act-batch 8: a burst of acts on three channels with three tasks, sent without waiting so
+@pytest.mark.parametrize("threads", ["1", "2", "3"])
+def test_batched_acts_match_reference(bundle, start, threads):
+    """--act-batch 8, its pass on one thread or shared by 2 or 3 (--act-threads): a burst of acts on three channels with three tasks, sent without waiting so
     that they queue and are answered in batches (one veer_act_each per batch), with requests for
     a channel with no task, of a wrong state length, with a NaN, undecodable bytes and a
     describe mixed in. Every reply comes back (in each batch those that need no policy before
@@ -278,7 +279,8 @@ def test_batched_acts_match_reference(bundle, start):
     models the argmax may differ only between actions whose Q tie within that tolerance)."""
     from veer import bundle as vb
     port = harness.free_port()
-    d, c = start(bundle, "tcp", ("--act-batch", "8", "--http", f"127.0.0.1:{port}"))
+    d, c = start(bundle, "tcp", ("--act-batch", "8", "--act-threads", threads,
+                                 "--http", f"127.0.0.1:{port}"))
     rng = np.random.default_rng(8)
     zs = {}
     for k in range(3):

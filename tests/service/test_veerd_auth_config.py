@@ -119,6 +119,9 @@ def test_loopback_admin_accepted(continuous_bundle, start, tmp_path, kind):
     ([], {"VEER_DEADLINE_PERCENTILE": "101"}, "--deadline-percentile"),
     (["--act-batch", "0"], {}, "--act-batch"),
     ([], {"VEER_ACT_BATCH": "17"}, "--act-batch"),
+    (["--act-threads", "0"], {}, "--act-threads"),
+    ([], {"VEER_ACT_THREADS": "5"}, "--act-threads"),
+    (["--act-threads", "2"], {}, "--act-threads"),  # without --act-batch: nothing to share
 ])
 def test_bad_configuration_exits_2(continuous_bundle, tmp_path, args, env, flag):
     r = run_veerd(["--bundle", str(continuous_bundle.path), "--state-dir", str(tmp_path / "s"), *args], env)
@@ -152,7 +155,7 @@ def test_help_explains_every_flag():
     for flag in ["--bundle", "--state-dir", "--act", "--admin", "--events", "--http", "--default-deadline-us",
                  "--max-message-bytes", "--act-max-message-bytes", "--max-samples", "--max-tasks",
                  "--max-channels", "--journal-compact-bytes", "--server-key", "--allowed-keys", "--act-auth",
-                 "--deadline-percentile", "--act-batch"]:
+                 "--deadline-percentile", "--act-batch", "--act-threads"]:
         assert f"  {flag} " in r.stdout, flag
     for var in ["VEER_BUNDLE", "VEER_ADMIN", "VEER_STATE_DIR", "VEER_SERVER_KEY"]:
         assert var in r.stdout
@@ -208,14 +211,17 @@ SCHED_OTHER, SCHED_FIFO = 0, 1  # sched.h
 
 
 @pytest.mark.skipif(not _fifo_allowed(), reason="this machine does not allow SCHED_FIFO (no CAP_SYS_NICE)")
-def test_act_priority_puts_act_and_zmq_threads_at_fifo(continuous_bundle, start):
-    d, c = start(continuous_bundle, extra=["--act-priority", "15"])
+@pytest.mark.parametrize("helpers", [0, 1])
+def test_act_priority_puts_act_and_zmq_threads_at_fifo(continuous_bundle, start, helpers):
+    split = ["--act-batch", "4", "--act-threads", str(1 + helpers)] if helpers else []
+    d, c = start(continuous_bundle, extra=["--act-priority", "15", *split])
     threads = _thread_scheduling(d.proc.pid)
     fifo = sorted(name for name, pol, prio in threads.values() if pol == SCHED_FIFO and prio == 15)
     other = [name for name, pol, _ in threads.values() if pol == SCHED_OTHER]
-    # The act thread (named like the process) and libzmq's I/O and reaper threads; the main
-    # loop and libuv's workers stay at ordinary priority, so admin work cannot starve acts.
-    assert fifo == ["ZMQbg/IO/0", "ZMQbg/Reaper", "veerd"], threads
+    # The act thread (named like the process), its helpers under --act-threads, and libzmq's I/O
+    # and reaper threads; the main loop and libuv's workers stay at ordinary priority, so admin
+    # work cannot starve acts.
+    assert fifo == ["ZMQbg/IO/0", "ZMQbg/Reaper", "veerd"] + ["veerd-helper"] * helpers, threads
     assert threads[d.proc.pid][1] == SCHED_OTHER and "veerd" in other
     s = continuous_bundle.states
     c.put_goals("park", s[:1], [1.0])
