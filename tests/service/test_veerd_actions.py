@@ -2,7 +2,9 @@
 in-process (through ctypes) for the same bundle, task and state; tasks from reward samples and
 from goal states; identical specifications stored once; a controller at 1 kHz sees every switch
 whole while a supervisor switches its channel 100 times."""
+import os
 import threading
+import types
 import time
 
 import numpy as np
@@ -380,3 +382,72 @@ def test_batched_acts_match_reference(bundle, start, threads):
     passes = metric(port, "veer_act_policy_passes_total")
     assert states_total == len(acted)
     assert passes < states_total, "no two queued acts were answered together"
+
+
+@pytest.fixture(scope="module")
+def table_bundle(tmp_path_factory):
+    """A model whose F reads the state through an embedding table (`veer train --arch table` on
+    a small random log of two integer features, 4 and 5 values): a state with an index outside
+    its table is refused by the model itself, not by veerd's checks."""
+    import subprocess
+    d = tmp_path_factory.mktemp("table")
+    rng = np.random.default_rng(5)
+    s = np.stack([rng.integers(0, 4, 400), rng.integers(0, 5, 400)], 1).astype(np.float32)
+    a = rng.integers(0, 3, 400).astype(np.int32)
+    nxt = np.stack([(s[:, 0] + a) % 4, (s[:, 1] + 1) % 5], 1).astype(np.float32)
+    for name, arr in (("s", s), ("a", a), ("n", nxt)):
+        np.save(d / f"{name}.npy", arr)
+    out = d / "table.veer"
+    subprocess.run([os.path.join(harness.BUILD, "bin", "veer"), "train", "--states", str(d / "s.npy"),
+                    "--actions", str(d / "a.npy"), "--next-states", str(d / "n.npy"),
+                    "--discrete", "3", "--step", "0.1", "--preset", "tabular", "--state-counts", "4,5",
+                    "--z-dim", "8", "--steps", "50", "--rng-key", "3", "--threads", "1", "--quiet",
+                    "--out", str(out)], check=True, capture_output=True)
+    return types.SimpleNamespace(path=out)
+
+
+@pytest.mark.parametrize("threads", ["1", "2"])
+def test_batched_refusal_falls_back_for_that_state_only(table_bundle, start, threads):
+    """In a batch, a state the model refuses (an index outside its embedding table) fails the
+    pass; veerd then redoes the batch's rows one by one (on whichever thread holds them), so
+    that act alone gets the fallback with VEER_ACT_NONFINITE, as a single act would, and every
+    other act gets the independent NumPy forward pass's argmax (veer.reference; a different
+    index only in a tie within 1e-5, Higham 2nd ed. section 1.2)."""
+    from veer import bundle as vb
+    d, c = start(table_bundle, "ipc", ("--act-batch", "8", "--act-threads", threads))
+    fallback = list(c.describe().describe.fallback_action)
+    reply = c.put_goals("cell", np.array([[1, 2]], np.float32))
+    z = np.array(reply.task.z, np.float64)
+    assert c.switch("line", "cell").channel.epoch == 1
+    rng = np.random.default_rng(6)
+    n = 96
+    states = np.stack([rng.integers(0, 4, n), rng.integers(0, 5, n)], 1).astype(np.float32)
+    bad = {i: v for i, v in zip(range(3, n, 7), [(0, 4.0), (1, 5.0), (0, -1.0), (1, 1.5)] * n)}
+    for i, (f, v) in bad.items():
+        states[i, f] = v
+    for i in range(n):  # all at once: the act thread finds them queued
+        q = c.act_request("line", states[i], seq=i, deadline_us=2000000)
+        q.protocol, q.id = 1, 1 + i
+        c.act.send(q.SerializeToString())
+    replies = {}
+    for _ in range(n):
+        assert c.act.poll(20000), f"only {len(replies)} of {n} replies"
+        r = harness.wire.Reply()
+        r.ParseFromString(c.act.recv())
+        assert r.WhichOneof("body") == "act", r
+        replies[r.act.seq] = r.act
+    assert sorted(replies) == list(range(n))
+    good = [i for i in range(n) if i not in bad]
+    for i in bad:
+        assert replies[i].flags == ACT_FALLBACK | harness.ACT_NONFINITE, (i, replies[i])
+        assert list(replies[i].action) == fallback
+    ref = vb.read_bundle(table_bundle.path.read_bytes())
+    S = states[good].astype(np.float64)
+    idx_r, _, q_all = ref.policy(S, np.repeat(z[None, :], len(good), 0))
+    idx = np.array([int(round(replies[i].action[0])) for i in good])
+    # Only the coverage flag (1 << 5, include/veer/runtime.h) may be set: a random log's
+    # training statistics put some of these states beyond its p99.9 distance.
+    assert all(replies[i].flags & ~(1 << 5) == 0 for i in good), {i: replies[i].flags for i in good}
+    rows = np.arange(len(good))
+    scale = np.abs(q_all).max(axis=1)
+    assert np.all(q_all[rows, idx_r] - q_all[rows, idx] <= 1e-5 * scale)
