@@ -10,11 +10,12 @@
  * Memory is sized once in veer__act_start from the model and batch_max: the decoding arena (16
  * bytes of arena per byte of the largest request, per slot: room for protobuf-c's structs and
  * unknown-field records), the reply buffer (the largest Reply an Act or Describe can produce,
- * plus an Error), the batch's state, task, action, value and flag rows, the workspace. The
- * running p99 of policy time comes from two alternating windows of the monitor's log-linear
- * histogram: the estimate is the p99 of the last full window of 1024 policy evaluations (one
- * per batch), so it follows load changes within about a second at 1 kHz and costs one
- * histogram record per evaluation plus one percentile scan per window. */
+ * plus an Error), the batch's state, task, action, value and flag rows, the workspace (and the
+ * helpers' workspaces under --act-threads). The running p99 of policy time comes from two
+ * alternating windows of the monitor's log-linear histogram: the estimate is the p99 of the
+ * last full window of 1024 policy evaluations (one per batch), so it follows load changes
+ * within about a second at 1 kHz and costs one histogram record per evaluation plus one
+ * percentile scan per window. */
 #include "service/act.h"
 
 #include <errno.h>

@@ -143,8 +143,9 @@ int veer__act_split_start(const veer_bundle *bundle, uint32_t helpers, uint32_t 
             break;
         int prc = pthread_create(&h->thread, &attr, helper_main, h);
         if (prc != 0) {
-            rc = veer__error_set(err, VEER_EIO, "act", "cannot start an act helper thread: %s",
-                                 strerror(prc));
+            rc = veer__error_set(err, prc == EPERM ? VEER_ECONFIG : VEER_EIO, "act",
+                                 "cannot start an act helper thread%s: %s",
+                                 priority ? " at SCHED_FIFO priority" : "", strerror(prc));
             break;
         }
         h->started = 1;

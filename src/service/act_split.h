@@ -43,7 +43,8 @@ void veer__act_rows_eval(const veer_model_info *info, veer_workspace *ws,
 
 /* Starts `helpers` threads (1 to VEER__ACT_SPLIT_MAX_HELPERS), each with a workspace for
  * `max_rows` rows. priority 0: ordinary scheduling, else SCHED_FIFO at that priority (the
- * caller checked that it is allowed). VEER_ENOMEM, or VEER_EIO when a thread cannot start. */
+ * caller checked that it is allowed). VEER_ENOMEM, or VEER_ECONFIG (the kernel refused the
+ * priority) / VEER_EIO when a thread cannot start. */
 #define VEER__ACT_SPLIT_MAX_HELPERS 3
 int veer__act_split_start(const veer_bundle *bundle, uint32_t helpers, uint32_t max_rows,
                           uint32_t spin_us, uint32_t priority, veer__act_split **out,
