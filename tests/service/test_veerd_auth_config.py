@@ -215,6 +215,15 @@ SCHED_OTHER, SCHED_FIFO = 0, 1  # sched.h
 def test_act_priority_puts_act_and_zmq_threads_at_fifo(continuous_bundle, start, helpers):
     split = ["--act-batch", "4", "--act-threads", str(1 + helpers)] if helpers else []
     d, c = start(continuous_bundle, extra=["--act-priority", "15", *split])
+    s = continuous_bundle.states
+    c.put_goals("park", s[:1], [1.0])
+    assert c.switch("line-1", "park").channel.epoch == 1
+    r = c.do_act("line-1", s[5], seq=1, deadline_us=500000).act
+    assert r.task == "park" and r.flags & harness.ACT_FALLBACK == 0
+    # Read the threads only after a reply came back: veerd logs "ready" once its sockets are
+    # bound, and libzmq's I/O thread may not have run yet then (it sets its own priority and
+    # name when it first runs; a slow CI host once caught it still unnamed at SCHED_OTHER). A
+    # reply has passed through it, so by now it has.
     threads = _thread_scheduling(d.proc.pid)
     fifo = sorted(name for name, pol, prio in threads.values() if pol == SCHED_FIFO and prio == 15)
     other = [name for name, pol, _ in threads.values() if pol == SCHED_OTHER]
@@ -223,11 +232,6 @@ def test_act_priority_puts_act_and_zmq_threads_at_fifo(continuous_bundle, start,
     # work cannot starve acts.
     assert fifo == ["ZMQbg/IO/0", "ZMQbg/Reaper", "veerd"] + ["veerd-helper"] * helpers, threads
     assert threads[d.proc.pid][1] == SCHED_OTHER and "veerd" in other
-    s = continuous_bundle.states
-    c.put_goals("park", s[:1], [1.0])
-    assert c.switch("line-1", "park").channel.epoch == 1
-    r = c.do_act("line-1", s[5], seq=1, deadline_us=500000).act
-    assert r.task == "park" and r.flags & harness.ACT_FALLBACK == 0
 
 
 @pytest.mark.skipif(shutil.which("setpriv") is None or shutil.which("prlimit") is None,
