@@ -248,11 +248,9 @@ static Veer__Bundle__Network *averaged_head_msg(arena *ar, const veer__nn *f1, c
     return ar->oom ? NULL : m;
 }
 
-static int b_of(const veer__trainer *t, const float *states, size_t count, float *out)
+static int b_of(const veer__trainer *t, veer__nn *b, const float *states, size_t count, float *out)
 {
     size_t D = t->log->state_dim, d = t->d;
-    veer__nn *f[VEER_TRAIN_MAX_HEADS], *b, *actor;
-    veer__trainer_outputs(t, f, &b, &actor);
     for (size_t at = 0; at < count; at += t->n) {
         size_t m = count - at < t->n ? count - at : t->n;
         const float *y;
@@ -272,9 +270,31 @@ int veer__train_export(const veer__trainer *t, const char *path, const char *set
     size_t D = log->state_dim, d = t->d, N = log->n;
     arena ar = {0};
     veer__tstats st = {0};
+    veer__nn *f[VEER_TRAIN_MAX_HEADS] = {NULL}, *b = NULL, *actor = NULL;
+    veer__nn *folded[VEER_TRAIN_MAX_HEADS + 2] = {NULL};
     int rc = veer__tstats_compute(log->states, N, (uint32_t)D, 10, &st, err);
     if (rc != 0)
         return rc;
+    /* The networks; with --input-norm, copies with the standardisation folded into their first
+     * layers, so that the bundle, its reference B and Cov(B) all take raw states. */
+    veer__trainer_outputs(t, f, &b, &actor);
+    if (t->in_mean) {
+        veer__nn **nets[VEER_TRAIN_MAX_HEADS + 2] = {&b, &actor, &f[0], &f[1]};
+        for (uint32_t i = 0; i < 2 + t->heads; i++) {
+            if (*nets[i] == NULL)
+                continue;
+            if (veer__nn_clone(*nets[i], &folded[i]) != 0) {
+                rc = veer__error_set(err, VEER_ENOMEM, "bundle", "no memory to fold --input-norm");
+                goto done;
+            }
+            if (veer__nn_fold_state_affine(folded[i], t->in_mean, t->in_scale) != 0) {
+                rc = veer__error_set(err, VEER_EINVAL, "--input-norm",
+                                     "a network reads the state through a non-linear first layer");
+                goto done;
+            }
+            *nets[i] = folded[i];
+        }
+    }
 
     Veer__Bundle__Model *m = ar_alloc(&ar, sizeof *m);
     Veer__Bundle__ActionSpace *as = ar_alloc(&ar, sizeof *as);
@@ -341,8 +361,6 @@ int veer__train_export(const veer__trainer *t, const char *path, const char *set
     td->ridge = 1e-3f;
     m->task_defaults = td;
 
-    veer__nn *f[VEER_TRAIN_MAX_HEADS], *b, *actor;
-    veer__trainer_outputs(t, f, &b, &actor);
     m->forward = t->heads == 1             ? net_msg(&ar, f[0])
                  : f[0]->head.nlayers == 0 ? averaged_msg(&ar, f[0], f[1])
                                            : averaged_head_msg(&ar, f[0], f[1]);
@@ -387,7 +405,7 @@ int veer__train_export(const veer__trainer *t, const char *path, const char *set
         perm[j] = tmp;
         memcpy(rs + i * D, log->states + perm[i] * D, D * sizeof(float));
     }
-    if ((rc = b_of(t, rs, R, rb)) != 0) {
+    if ((rc = b_of(t, b, rs, R, rb)) != 0) {
         veer__error_set(err, rc, "reference", "B failed on the reference states");
         goto done;
     }
@@ -401,7 +419,7 @@ int veer__train_export(const veer__trainer *t, const char *path, const char *set
     /* Cov(B) = E[B Bᵀ] over every next state of the log. */
     for (size_t at = 0; at < N; at += t->n) {
         size_t k = N - at < t->n ? N - at : t->n;
-        if ((rc = b_of(t, log->next_states + at * D, k, chunk)) != 0) {
+        if ((rc = b_of(t, b, log->next_states + at * D, k, chunk)) != 0) {
             veer__error_set(err, rc, "cov_b", "B failed on the log's next states");
             goto done;
         }
@@ -434,5 +452,7 @@ oom:
 done:
     ar_free(&ar);
     veer__tstats_free(&st);
+    for (size_t i = 0; i < sizeof folded / sizeof folded[0]; i++)
+        veer__nn_free(folded[i]);
     return rc;
 }

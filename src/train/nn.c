@@ -386,6 +386,32 @@ void veer__nn_polyak(veer__nn *target, const veer__nn *online, float tau)
         t[i] = keep * t[i] + tau * o[i];
 }
 
+int veer__nn_fold_state_affine(veer__nn *nn, const float *mean, const float *scale)
+{
+    for (uint32_t b = 0; b < nn->nbranches; b++) {
+        veer__nn_chain *c = &nn->branch[b];
+        uint32_t off = 0;
+        for (uint32_t i = 0; i < c->ninputs; off += c->inputs[i].width, i++) {
+            const veer__nn_input *in = &c->inputs[i];
+            if (in->kind != VEER_NN_IN_STATE)
+                continue;
+            if (c->nlayers == 0 || c->layers[0].kind != VEER_NN_LINEAR)
+                return VEER_EINVAL;
+            veer__nn_layer *l = &c->layers[0];
+            float *w = nn->params + l->w_off, *bias = nn->params + l->b_off;
+            for (uint32_t k = 0; k < in->width; k++) {
+                uint32_t f = in->nfeat ? in->features[k] : k;
+                for (uint32_t o = 0; o < l->out; o++) {
+                    float *wk = &w[(size_t)o * l->in + off + k];
+                    *wk *= scale[f];
+                    bias[o] -= *wk * mean[f];
+                }
+            }
+        }
+    }
+    return 0;
+}
+
 /* ---- forward ----------------------------------------------------------------------------- */
 
 static int assemble(veer__nn *nn, veer__nn_chain *c, size_t n, const float *s, const float *a,

@@ -122,6 +122,13 @@ void veer__nn_backward(veer__nn *nn, size_t n, const float *dout, float *daction
 
 void veer__nn_zero_grad(veer__nn *nn);
 
+/* Folds the standardisation x' = (x - mean[f]) * scale[f] of every state feature f into the
+ * first linear layer of each branch that reads the state (W' = W diag(scale), b' = b - W' mean),
+ * so that on raw states the network computes what it computed on standardised ones. For
+ * export: the bundle keeps its plain layers. VEER_EINVAL when a branch reads the state through
+ * anything but a linear first layer (an embedding reads indices). */
+int veer__nn_fold_state_affine(veer__nn *nn, const float *mean, const float *scale);
+
 /* target <- (1 - tau) target + tau online, over all parameters (Polyak averaging). */
 void veer__nn_polyak(veer__nn *target, const veer__nn *online, float tau);
 

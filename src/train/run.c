@@ -37,7 +37,11 @@ static void describe(const veer_train_config *c, char *out, size_t cap)
         sl = snprintf(schedule, sizeof schedule, " lr_schedule=cosine:%llu",
                       (unsigned long long)c->steps);
     if (c->average > 0)
-        snprintf(schedule + sl, sizeof schedule - (size_t)sl, " average=%g", (double)c->average);
+        sl += snprintf(schedule + sl, sizeof schedule - (size_t)sl, " average=%g",
+                       (double)c->average);
+    /* Named only when on, so the settings (and bundles) of runs without it stay as they were. */
+    if (c->input_norm)
+        snprintf(schedule + sl, sizeof schedule - (size_t)sl, " input_norm=1");
     int n = snprintf(out, cap,
                      "arch=%s z_dim=%u hidden=%u b_hidden=%u layers=%u k=%u heads=%u b_norm=%d "
                      "embed_std=%g batch=%u lr_f=%g lr_b=%g lr_actor=%g discount=%g tau=%g "

@@ -262,6 +262,8 @@ static int check_config(const veer_train_config *c, const veer__tlog *log, veer_
                                   "feature (at most %d features)", VEER_NN_MAX_COUNTS - 1);
         REQUIRE(c->heads == 1, "--heads", "--arch table trains one F head");
         REQUIRE(c->bilinear_k >= 1 && c->bilinear_k <= 4096, "--k", "--k must be in 1..4096");
+        REQUIRE(!c->input_norm, "--input-norm",
+                "--arch table reads states as indices; they cannot be standardised");
     }
     for (uint32_t i = 0; i < c->nb_features; i++)
         REQUIRE(c->b_features[i] < log->state_dim, "--b-features",
@@ -269,6 +271,36 @@ static int check_config(const veer_train_config *c, const veer__tlog *log, veer_
                 log->state_dim);
     return 0;
 #undef REQUIRE
+}
+
+/* --input-norm: each state feature's mean and population standard deviation over the log's
+ * states, in double. The first layers then see features of comparable size: with the demo
+ * arm's log the joint velocities spread 4-7 rad/s and the gripper position 0.3-0.4 m, so raw
+ * inputs let the velocities dominate the first layer at initialisation (input standardisation
+ * is common practice, no source). A feature that barely varies keeps scale 1: dividing by a
+ * near-zero spread would turn rounding into signal. One allocation holds both arrays. */
+static int input_stats(veer__trainer *t, veer_error *err)
+{
+    const veer__tlog *log = t->log;
+    size_t N = log->n, D = log->state_dim;
+    t->in_mean = veer__malloc(2 * D * sizeof(float));
+    if (t->in_mean == NULL)
+        return veer__error_set(err, VEER_ENOMEM, "--input-norm", NULL);
+    t->in_scale = t->in_mean + D;
+    for (size_t j = 0; j < D; j++) {
+        double m = 0, v = 0;
+        for (size_t i = 0; i < N; i++)
+            m += log->states[i * D + j];
+        m /= (double)N;
+        for (size_t i = 0; i < N; i++) {
+            double e = log->states[i * D + j] - m;
+            v += e * e;
+        }
+        double sd = sqrt(v / (double)N);
+        t->in_mean[j] = (float)m;
+        t->in_scale[j] = sd > 1e-6 * fmax(1.0, fabs(m)) ? (float)(1.0 / sd) : 1.0f;
+    }
+    return 0;
 }
 
 int veer__trainer_create(const veer_train_config *c, const veer__tlog *log, veer__trainer **out,
@@ -294,10 +326,16 @@ int veer__trainer_create(const veer_train_config *c, const veer__tlog *log, veer
         t->act_half[j] = 0.5f * (c->high[j] - c->low[j]);
     }
 
+    if (c->input_norm && (rc = input_stats(t, err)) != 0) {
+        veer__free(t);
+        return rc;
+    }
+
     /* Hold out a fixed random subset for the Bellman residual (at most 4096 transitions). */
     size_t N = log->n;
     t->train_idx = veer__malloc(N * sizeof *t->train_idx);
     if (t->train_idx == NULL) {
+        veer__free(t->in_mean);
         veer__free(t);
         return veer__error_set(err, VEER_ENOMEM, "trainer", NULL);
     }
@@ -407,6 +445,7 @@ void veer__trainer_destroy(veer__trainer *t)
         veer__free_aligned(bufs[i]);
     veer__free(t->idx);
     veer__free(t->train_idx);
+    veer__free(t->in_mean);
     veer__free(t);
 }
 
@@ -437,6 +476,12 @@ static void gather(const veer__trainer *t, const size_t *rows, size_t n, float *
         memcpy(a + r * A, log->actions + i * A, A * sizeof(float));
         cont[r] = log->cont[i];
     }
+    if (t->in_mean)
+        for (size_t r = 0; r < n; r++)
+            for (size_t j = 0; j < D; j++) {
+                s[r * D + j] = (s[r * D + j] - t->in_mean[j]) * t->in_scale[j];
+                sn[r * D + j] = (sn[r * D + j] - t->in_mean[j]) * t->in_scale[j];
+            }
 }
 
 /* mean over heads of F(s, a, z) into out (n x d). */

@@ -61,6 +61,9 @@ typedef struct veer_train_config {
     uint32_t b_features[64], nb_features;    /* the features B reads (0: all) */
     uint32_t z_dim, hidden, b_hidden, layers, bilinear_k, heads;
     int b_norm;                   /* rescale B's output to norm sqrt(d) */
+    int input_norm;               /* 1: the networks see each state feature standardised by
+                                     the log's mean and standard deviation; the export folds
+                                     that into their first layers, so bundles read raw states */
     float embed_std;              /* TABLE: initial std of the tables */
 
     /* Optimisation. */
@@ -117,6 +120,9 @@ typedef struct veer__trainer {
     float *s, *a, *sn, *an, *cont, *z, *zmix, *u, *ft_mean, *fbuf, *df, *db, *da, *work, *q, *qbest;
     float *hold_z;                 /* nhold x d task vectors fixed for the held-out residual */
     float act_center[VEER_TRAIN_MAX_ACTION_DIM], act_half[VEER_TRAIN_MAX_ACTION_DIM];
+    /* With --input-norm: per state feature, the log's mean and 1 / standard deviation; batches
+     * are standardised as they are gathered (NULL otherwise). */
+    float *in_mean, *in_scale;
 } veer__trainer;
 
 /* Builds the networks and optimisers for `log` (which must outlive the trainer). */
@@ -128,7 +134,8 @@ void veer__trainer_destroy(veer__trainer *t);
 int veer__trainer_step(veer__trainer *t, veer__train_losses *losses);
 
 /* The networks a bundle is made of: the parameter averages with --average, else the networks
- * being trained. `f` gets `heads` entries; `actor` is NULL for discrete actions. */
+ * being trained. `f` gets `heads` entries; `actor` is NULL for discrete actions. With
+ * --input-norm they read standardised states (in_mean, in_scale); the export folds that in. */
 void veer__trainer_outputs(const veer__trainer *t, veer__nn *f[VEER_TRAIN_MAX_HEADS], veer__nn **b,
                            veer__nn **actor);
 

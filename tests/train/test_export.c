@@ -183,25 +183,44 @@ static void roundtrip(veer_train_config *c)
         for (size_t j = 0; j < d; j++)
             z[i * d + j] = (float)(rnd(&st) * 2 - 1);
     }
+    /* With --input-norm the trainer's networks read standardised states while the bundle
+     * reads raw ones: standardise a copy here, by the log's mean and population standard
+     * deviation computed in double (the definition, independent of the trainer's code). */
+    float *sx = s;
+    if (c->input_norm) {
+        sx = malloc(n * D * sizeof *sx);
+        for (size_t j = 0; j < D; j++) {
+            double m = 0, v = 0;
+            for (size_t i = 0; i < log.n; i++)
+                m += log.states[i * D + j];
+            m /= (double)log.n;
+            for (size_t i = 0; i < log.n; i++)
+                v += (log.states[i * D + j] - m) * (log.states[i * D + j] - m);
+            double sd = sqrt(v / (double)log.n);
+            assert_true(sd > 0.1); /* the test log's features spread 0.3-1.4 */
+            for (size_t i = 0; i < n; i++)
+                sx[i * D + j] = (float)((s[i * D + j] - m) / sd);
+        }
+    }
     /* What the bundle must hold: the trained networks, or their averages with --average (the
      * tabular preset's default). */
     veer__nn *fo[VEER_TRAIN_MAX_HEADS], *bo, *ao;
     veer__trainer_outputs(t, fo, &bo, &ao);
     const float *y;
     for (uint32_t h = 0; h < t->heads; h++) {
-        assert_int_equal(veer__nn_forward(fo[h], n, s, a, z, &y), 0);
+        assert_int_equal(veer__nn_forward(fo[h], n, sx, a, z, &y), 0);
         for (size_t i = 0; i < n * d; i++)
             want[i] += y[i] / (float)t->heads;
     }
     assert_int_equal(veer_eval_forward(ws, n, s, a, z, got), 0);
     for (size_t i = 0; i < n * d; i++)
         close_to("F", i, got[i], want[i], 1e-4);
-    assert_int_equal(veer__nn_forward(bo, n, s, NULL, NULL, &y), 0);
+    assert_int_equal(veer__nn_forward(bo, n, sx, NULL, NULL, &y), 0);
     assert_int_equal(veer_eval_backward(ws, n, s, got), 0);
     for (size_t i = 0; i < n * d; i++)
         close_to("B", i, got[i], y[i], 1e-4);
     if (ao) {
-        assert_int_equal(veer__nn_forward(ao, n, s, NULL, z, &y), 0);
+        assert_int_equal(veer__nn_forward(ao, n, sx, NULL, z, &y), 0);
         assert_int_equal(veer_eval_actor(ws, n, s, z, got), 0);
         for (size_t i = 0; i < n * A; i++)
             close_to("actor", i, got[i], y[i], 1e-4);
@@ -267,6 +286,8 @@ static void roundtrip(veer_train_config *c)
     assert_string_equal(mi->producer, "veer-train 0.1");
     assert_non_null(strstr(mi->source_digest, "blake2b-256 states="));
 
+    if (sx != s)
+        free(sx);
     free(s), free(a), free(z), free(got), free(want);
     veer_workspace_destroy(ws);
     veer_bundle_close(b);
@@ -295,12 +316,43 @@ static void test_roundtrip_split(void **state)
     roundtrip(&c);
 }
 
+/* --input-norm, with the single-MLP F and the split F (whose two branches both read the
+ * state), and B reading a subset of the features: the bundle on raw states must give the
+ * trainer's networks on standardised ones. */
+static void test_roundtrip_input_norm(void **state)
+{
+    (void)state;
+    veer_train_config c;
+    cont_config(&c, "norm.veer");
+    c.input_norm = 1;
+    c.b_features[0] = 4, c.b_features[1] = 1, c.b_features[2] = 2, c.nb_features = 3;
+    roundtrip(&c);
+    cont_config(&c, "norm-split.veer");
+    c.input_norm = 1;
+    c.arch = VEER_TRAIN_SPLIT;
+    roundtrip(&c);
+}
+
 static void test_roundtrip_table(void **state)
 {
     (void)state;
     veer_train_config c;
     table_config(&c, "table.veer");
     roundtrip(&c);
+
+    /* Index states cannot be standardised: --input-norm is refused, naming the flag. */
+    c.input_norm = 1;
+    veer__tlog_spec spec = {.states_path = c.states_path, .actions_path = c.actions_path,
+                            .next_states_path = c.next_states_path, .action_count = 3,
+                            .action_dim = 1, .nstate_counts = 2, .state_counts = c.state_counts};
+    veer__tlog log;
+    veer_error err;
+    assert_int_equal(veer__tlog_load(&spec, &log, &err), 0);
+    veer__trainer *t = NULL;
+    assert_int_equal(veer__trainer_create(&c, &log, &t, &err), VEER_ECONFIG);
+    assert_string_equal(err.field, "--input-norm");
+    assert_null(t);
+    veer__tlog_free(&log);
 }
 
 static unsigned char *slurp(const char *p, size_t *len)
@@ -525,6 +577,7 @@ int main(void)
     const struct CMUnitTest tests[] = {
         cmocka_unit_test(test_roundtrip_continuous),
         cmocka_unit_test(test_roundtrip_split),
+        cmocka_unit_test(test_roundtrip_input_norm),
         cmocka_unit_test(test_roundtrip_table),
         cmocka_unit_test(test_same_flags_same_bundle_and_resume),
         cmocka_unit_test(test_cosine_schedule),

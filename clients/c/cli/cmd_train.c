@@ -34,6 +34,9 @@ static void usage(FILE *to)
         "                                  split: F embeds (state, action) and (state, z) apart)\n"
         "          --z-dim N  --hidden N  --b-hidden N  --layers N  --k N  --heads 1|2\n"
         "          --b-features I,...  --no-b-norm  --embed-std X\n"
+        "          --input-norm            standardise each state feature by the log's mean\n"
+        "                                  and spread for the networks (folded into the\n"
+        "                                  bundle's first layers: it still reads raw states)\n"
         "training: --steps N  --batch N  --lr X (all three)  --lr-f X  --lr-b X  --lr-actor X\n"
         "          --lr-schedule constant|cosine   (cosine: every rate decays to 0 by --steps)\n"
         "          --average RATE          export an exponential moving average of the\n"
@@ -163,6 +166,9 @@ static int run(int argc, char **argv)
             takes = 0;
         } else if (IS("--no-b-norm")) {
             c.b_norm = 0;
+            takes = 0;
+        } else if (IS("--input-norm")) {
+            c.input_norm = 1;
             takes = 0;
         } else if (v == NULL) {
             fprintf(stderr, "veer train: %s needs a value (see veer train --help)\n", f);
