@@ -29,6 +29,21 @@ void veer__k_linear(size_t n, uint32_t in, uint32_t out, const float *x, const f
     }
 }
 
+void veer__k_linear_block(size_t n, uint32_t k, uint32_t out, const float *x, size_t ldx,
+                          const float *w, size_t ldw, float *y)
+{
+    if (n == 0 || k == 0)
+        return;
+    if (n <= VEER__K_GEMV_ROWS_MAX) {
+        for (size_t r = 0; r < n; r++)
+            cblas_sgemv(CblasRowMajor, CblasNoTrans, (int)out, (int)k, 1.0f, w, (int)ldw,
+                        x + r * ldx, 1, 1.0f, y + r * out, 1);
+    } else {
+        cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasTrans, (int)n, (int)out, (int)k, 1.0f, x,
+                    (int)ldx, w, (int)ldw, 1.0f, y, (int)out);
+    }
+}
+
 void veer__k_relu(size_t count, float *x)
 {
     for (size_t i = 0; i < count; i++)

@@ -24,6 +24,13 @@
 void veer__k_linear(size_t n, uint32_t in, uint32_t out, const float *x, const float *w,
                     const float *b, float *y);
 
+/* One column block of a linear layer, added into y: y[r] += x[r, 0:k] W[:, 0:k]ᵀ for n rows,
+ * with x's rows ldx floats apart and W's rows ldw apart (so x and w may point into the middle
+ * of wider rows: a block of a layer's input columns and the matching columns of W, out rows).
+ * y is n x out, contiguous. Same sgemv/sgemm choice as veer__k_linear. */
+void veer__k_linear_block(size_t n, uint32_t k, uint32_t out, const float *x, size_t ldx,
+                          const float *w, size_t ldw, float *y);
+
 /* In place over `count` values: max(x, 0) and tanh(x). NaN stays NaN in both, so a broken
  * network shows up as a non-finite output rather than being hidden by the activation. */
 void veer__k_relu(size_t count, float *x);

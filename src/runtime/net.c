@@ -6,13 +6,15 @@
  * neither the action nor a per-row z gives the same output for every action of a state, so
  * when the rows repeat each state (discrete acting) it is evaluated once per state and its
  * output copied: for the usual F with a state-action branch and a z branch this halves the work
- * of the z branch. */
+ * of the z branch. When the rows repeat each state, the first linear layer of a branch (or of a
+ * concat head) computes the columns shared by a state's rows once per state (net_repeat.h). */
 #include "runtime/net.h"
 
 #include <cblas.h>
 #include <string.h>
 
 #include "runtime/kernels.h"
+#include "runtime/net_repeat.h"
 #include "veer/error.h"
 
 void veer__net_buf_sizes(const veer__net *net, size_t rows, size_t sizes[3])
@@ -110,29 +112,73 @@ static int run_layers(const veer__layer *layers, uint32_t count, const veer__net
     return 0;
 }
 
+/* 1 when every row of a state reads the same z: a shared z, or one per state (z_rep a
+ * multiple of state_rep). */
+static int same_z_per_state(const veer__rows *rows)
+{
+    uint32_t rep = rows->state_rep ? rows->state_rep : 1;
+    uint32_t z_rep = rows->z_rep ? rows->z_rep : 1;
+    return rows->z_shared || z_rep % rep == 0;
+}
+
+/* 1 when branch br gives the same output for every row of a state, so runs once per state. */
+static int once_per_state(const veer__branch *br, const veer__rows *rows)
+{
+    uint32_t rep = rows->state_rep ? rows->state_rep : 1;
+    return rep > 1 && !br->reads_action && (!br->reads_task || same_z_per_state(rows));
+}
+
+/* How a branch's input columns vary across the rows of one state (net_repeat.h). */
+static void branch_cols(const veer__branch *br, const veer__rows *rows, veer__rep_cols *cols)
+{
+    uint32_t col = 0;
+    cols->count = br->input_count;
+    for (uint32_t i = 0; i < br->input_count; i++) {
+        const veer__input *inp = &br->inputs[i];
+        int vary = VEER__REP_PER_ROW;
+        if (inp->kind == VEER__INPUT_STATE ||
+            (inp->kind == VEER__INPUT_TASK && same_z_per_state(rows)))
+            vary = VEER__REP_SHARED;
+        else if (inp->kind == VEER__INPUT_ACTION_ONEHOT)
+            vary = VEER__REP_ONEHOT;
+        cols->blocks[i] = (veer__rep_block){.col = col, .width = inp->width, .vary = vary};
+        col += inp->width;
+    }
+}
+
 static int eval_branch(const veer__net *net, uint32_t b, const veer__net_bufs *bufs,
                        const veer__rows *rows, uint32_t col)
 {
     const veer__branch *br = &net->branches[b];
     uint32_t rep = rows->state_rep ? rows->state_rep : 1;
-    /* A z per state (z_rep a multiple of state_rep) is as good as a shared one here: every row
-     * of a state reads the same z. */
-    uint32_t z_rep = rows->z_rep ? rows->z_rep : 1;
-    int same_z = rows->z_shared || !br->reads_task || z_rep % rep == 0;
-    int once_per_state = rep > 1 && !br->reads_action && same_z;
-    size_t n = once_per_state ? rows->n / rep : rows->n;
+    int once = once_per_state(br, rows);
+    size_t n = once ? rows->n / rep : rows->n;
 
-    int rc = build_inputs(br, rows, n, once_per_state ? rep : 1, bufs->in);
+    int rc = build_inputs(br, rows, n, once ? rep : 1, bufs->in);
     if (rc != 0)
         return rc;
     const float *cur = bufs->in;
     uint32_t width = br->in_width;
-    rc = run_layers(br->layers, br->layer_count, bufs, n, &cur, &width);
+    const veer__layer *layers = br->layers;
+    uint32_t count = br->layer_count;
+    veer__rep_cols cols;
+    if (!once && count > 0 && layers[0].kind == VEER__LAYER_LINEAR) {
+        branch_cols(br, rows, &cols);
+        if (veer__rep_worth(&cols, rep)) {
+            veer__rep_linear(&layers[0], &cols, n, rep, bufs->in, br->in_width, bufs->pong,
+                             bufs->ping);
+            cur = bufs->ping;
+            width = layers[0].out_dim;
+            layers++;
+            count--;
+        }
+    }
+    rc = run_layers(layers, count, bufs, n, &cur, &width);
     if (rc != 0)
         return rc;
 
     size_t stride = net->branch_width;
-    if (!once_per_state) {
+    if (!once) {
         veer__k_copy_cols(n, width, cur, width, bufs->branches + col, stride);
     } else {
         for (size_t u = 0; u < n; u++)
@@ -181,12 +227,32 @@ int veer__net_eval(const veer__net *net, const veer__net_bufs *bufs, const veer_
 
     const float *cur = bufs->branches;
     uint32_t width = net->branch_width;
+    const veer__layer *head = net->head;
+    uint32_t count = net->head_count;
+    uint32_t rep = rows->state_rep ? rows->state_rep : 1;
     if (net->merge == VEER__MERGE_BILINEAR) {
         merge_bilinear(net, bufs, rows->n);
         cur = bufs->ping;
         width = net->merged_width;
+    } else if (count > 0 && head[0].kind == VEER__LAYER_LINEAR) {
+        /* Branches that ran once per state give the head's first layer shared columns. */
+        veer__rep_cols cols = {.count = net->branch_count};
+        for (uint32_t b = 0, c = 0; b < net->branch_count; c += net->branches[b].out_dim, b++)
+            cols.blocks[b] = (veer__rep_block){.col = c,
+                                               .width = net->branches[b].out_dim,
+                                               .vary = once_per_state(&net->branches[b], rows)
+                                                           ? VEER__REP_SHARED
+                                                           : VEER__REP_PER_ROW};
+        if (veer__rep_worth(&cols, rep)) {
+            veer__rep_linear(&head[0], &cols, rows->n, rep, bufs->branches, net->branch_width,
+                             bufs->pong, bufs->ping);
+            cur = bufs->ping;
+            width = head[0].out_dim;
+            head++;
+            count--;
+        }
     }
-    int rc = run_layers(net->head, net->head_count, bufs, rows->n, &cur, &width);
+    int rc = run_layers(head, count, bufs, rows->n, &cur, &width);
     if (rc != 0)
         return rc;
     *out = cur;

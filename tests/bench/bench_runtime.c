@@ -13,6 +13,9 @@
  *   act      every linear layer of F as one cblas call with the rows veer must compute: a
  *            branch that reads the action runs once per action (sgemm, action_count rows), one
  *            that does not runs once (sgemv), the head runs per action; then Q = F z (sgemv).
+ *            A first layer's columns that a state's action rows share (the state and z, the
+ *            outputs of branches that do not read the action) count once, not once per action
+ *            (src/runtime/net_repeat.h), and a one-hot action's columns count nothing.
  *            Continuous bundles: the actor's layers (sgemv) plus F at the chosen action.
  *            No activations, no layer norm, no input assembly, no argmax: a true lower bound.
  *   encode   every linear layer of B as sgemm over all samples, in the row-block size (256,
@@ -199,6 +202,7 @@ static size_t weights_bytes(const Veer__Bundle__Model *m)
 typedef struct floor_op {
     const float *w;
     int rows, in, out;
+    int ldw;     /* W's row stride: the layer's whole input width when the op is a block of it */
     int per_row; /* 1: one sgemv per row; 0: one sgemm (chosen by timing both, plan_finish) */
 } floor_op;
 
@@ -217,43 +221,77 @@ static int reads_action(const Veer__Bundle__Branch *br)
     return 0;
 }
 
-static void plan_layers(floor_plan *p, Veer__Bundle__Layer **layers, size_t n, int rows)
+static void add_op(floor_plan *p, const float *w, int rows, int in, int out, int ldw)
 {
-    for (size_t i = 0; i < n && p->n_ops < 64; i++) {
-        if (layers[i]->kind != VEER__BUNDLE__LAYER_KIND__LAYER_LINEAR)
+    if (p->n_ops < 64)
+        p->ops[p->n_ops++] = (floor_op){.w = w, .rows = rows, .in = in, .out = out, .ldw = ldw};
+}
+
+/* The linear layers of `layers` over `rows` rows. When the rows are one state's actions and
+ * `shared_in` > 0, the first layer's input has shared_in columns the same in every row (the
+ * state, z, outputs of branches that do not read the action) and per_row_in columns that
+ * differ: the shared block is one row's product and the rest `rows` rows' (src/runtime/
+ * net_repeat.h; a one-hot action block, per_row_in 0, is a column added per row: no product). */
+static void plan_layers(floor_plan *p, Veer__Bundle__Layer **layers, size_t n, int rows,
+                        int shared_in, int per_row_in)
+{
+    for (size_t i = 0; i < n; i++) {
+        const Veer__Bundle__Layer *l = layers[i];
+        if (l->kind != VEER__BUNDLE__LAYER_KIND__LAYER_LINEAR)
             continue;
-        floor_op *op = &p->ops[p->n_ops++];
-        op->w = layers[i]->weight;
-        op->rows = rows;
-        op->in = (int)layers[i]->in_dim;
-        op->out = (int)layers[i]->out_dim;
+        int in = (int)l->in_dim, out = (int)l->out_dim;
+        if (i == 0 && rows > 1 && shared_in > 0) {
+            add_op(p, l->weight, 1, shared_in, out, in);
+            if (per_row_in > 0)
+                add_op(p, l->weight + shared_in, rows, per_row_in, out, in);
+        } else {
+            add_op(p, l->weight, rows, in, out, in);
+        }
     }
 }
 
 /* `action_rows`: rows for branches that read the action and for the head (when any branch
- * does); `state_rows`: rows for the other branches. */
+ * does); `state_rows`: rows for the other branches. `onehot`: the action's width in a branch's
+ * input when it is a one-hot block (discrete acting), else 0. */
 static void plan_network(floor_plan *p, const Veer__Bundle__Network *net, int action_rows,
-                         int state_rows)
+                         int state_rows, int onehot)
 {
-    int any_action = 0;
+    int any_action = 0, shared_out = 0, per_row_out = 0;
     for (size_t i = 0; i < net->n_branches; i++) {
-        int ra = reads_action(net->branches[i]);
+        const Veer__Bundle__Branch *br = net->branches[i];
+        int ra = reads_action(br);
         any_action |= ra;
-        plan_layers(p, net->branches[i]->layers, net->branches[i]->n_layers,
-                    ra ? action_rows : state_rows);
+        int shared_in = 0;
+        if (ra && onehot > 0 && br->n_layers > 0 &&
+            br->layers[0]->kind == VEER__BUNDLE__LAYER_KIND__LAYER_LINEAR)
+            shared_in = (int)br->layers[0]->in_dim - onehot;
+        plan_layers(p, br->layers, br->n_layers, ra ? action_rows : state_rows, shared_in, 0);
+        /* The branch's output width: that of its last linear or embedding layer (the layers
+         * after it keep the width). */
+        int width = 0;
+        for (size_t j = 0; j < br->n_layers; j++)
+            if (br->layers[j]->kind == VEER__BUNDLE__LAYER_KIND__LAYER_LINEAR ||
+                br->layers[j]->kind == VEER__BUNDLE__LAYER_KIND__LAYER_EMBEDDING)
+                width = (int)br->layers[j]->out_dim;
+        if (ra)
+            per_row_out += width;
+        else
+            shared_out += width;
     }
-    plan_layers(p, net->head, net->n_head, any_action ? action_rows : state_rows);
+    int concat = net->merge != VEER__BUNDLE__MERGE_KIND__MERGE_BILINEAR;
+    plan_layers(p, net->head, net->n_head, any_action ? action_rows : state_rows,
+                concat && onehot > 0 ? shared_out : 0, per_row_out);
 }
 
 static void floor_op_run(const floor_op *op, const float *x, float *y)
 {
     if (op->per_row) {
         for (int r = 0; r < op->rows; r++)
-            cblas_sgemv(CblasRowMajor, CblasNoTrans, op->out, op->in, 1.0f, op->w, op->in,
+            cblas_sgemv(CblasRowMajor, CblasNoTrans, op->out, op->in, 1.0f, op->w, op->ldw,
                         x + (size_t)r * op->in, 1, 0.0f, y + (size_t)r * op->out, 1);
     } else {
         cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasTrans, op->rows, op->out, op->in, 1.0f, x,
-                    op->in, op->w, op->in, 0.0f, y, op->out);
+                    op->in, op->w, op->ldw, 0.0f, y, op->out);
     }
 }
 
@@ -359,11 +397,11 @@ static void bench_act(const char *label, const veer_bundle *bundle, const Veer__
     a.states = states;
     if (info->action_kind == VEER_ACTION_DISCRETE) {
         a.actions = (int)info->action_count;
-        plan_network(&a.floor, m->forward, a.actions, 1);
+        plan_network(&a.floor, m->forward, a.actions, 1, a.actions);
     } else {
         a.actions = 1;
-        plan_network(&a.floor, m->actor, 1, 1);
-        plan_network(&a.floor, m->forward, 1, 1);
+        plan_network(&a.floor, m->actor, 1, 1, 0);
+        plan_network(&a.floor, m->forward, 1, 1, 0);
     }
     plan_finish(&a.floor);
     a.f_out = random_floats((size_t)a.actions * a.d);
@@ -501,7 +539,7 @@ static run_time floor_encode(const Veer__Bundle__Model *m, int n, int block)
 {
     floor_plan p;
     memset(&p, 0, sizeof p);
-    plan_network(&p, m->backward, block, block);
+    plan_network(&p, m->backward, block, block, 0);
     plan_finish(&p);
     run_time t0 = clock_start();
     for (int off = 0; off < n; off += block) {

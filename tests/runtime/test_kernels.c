@@ -1,7 +1,8 @@
 /* The dense kernels (src/runtime/kernels.c) against naive loops written here from the textbook
  * definitions, in double precision: y_i = b_i + Σ_j W_ij x_j for a linear layer; max(x, 0);
  * tanh; layer normalisation y = g (x - mean) / sqrt(var + eps) + b with the population variance
- * (Ba, Kiros & Hinton 2016, "Layer Normalization", eq. 4); x·norm/||x||₂; mixed-radix indexing.
+ * (Ba, Kiros & Hinton 2016, "Layer Normalization", eq. 4); x·norm/||x||₂; mixed-radix indexing;
+ * a linear layer split into column blocks (net_repeat.h) against the same y = W x + b.
  * Worked examples are computed by hand in the comments beside them. */
 #include <math.h>
 #include <setjmp.h>
@@ -14,6 +15,7 @@
 #include <cmocka.h>
 
 #include "runtime/kernels.h"
+#include "runtime/net_repeat.h"
 #include "support.h"
 
 static void naive_linear(size_t n, uint32_t in, uint32_t out, const float *x, const float *w,
@@ -52,6 +54,75 @@ static void test_linear_single_and_batch(void **state)
     float w[4] = {1, 2, 3, 4}, b[2] = {0.5f, -1}, x[2] = {1, -1}, y[2];
     veer__k_linear(1, 2, 2, x, w, b, y);
     assert_true(y[0] == -0.5f && y[1] == -2.0f);
+    fx_free_all();
+}
+
+/* A column block of a wider layer, added into y (the building block of net_repeat.c). */
+static void test_linear_block(void **state)
+{
+    (void)state;
+    fx_srand(2);
+    const uint32_t in = 41, out = 23, col = 7, k = 13; /* columns 7..19 of a 41-wide input */
+    const size_t rows[] = {1, VEER__K_GEMV_ROWS_MAX, VEER__K_GEMV_ROWS_MAX + 3};
+    for (size_t t = 0; t < sizeof rows / sizeof rows[0]; t++) {
+        size_t n = rows[t];
+        float *x = fx_random(n * in, 2.0f), *w = fx_random((size_t)out * in, 1.0f);
+        float *y = fx_random(n * out, 1.0f);
+        double *r = fx_alloc(n * out * sizeof *r);
+        for (size_t i = 0; i < n * out; i++)
+            r[i] = y[i]; /* accumulates onto what y held */
+        for (size_t a = 0; a < n; a++)
+            for (uint32_t o = 0; o < out; o++)
+                for (uint32_t j = col; j < col + k; j++)
+                    r[a * out + o] += (double)w[(size_t)o * in + j] * x[a * in + j];
+        veer__k_linear_block(n, k, out, x + col, in, w + col, in, y);
+        assert_true(rel_err(y, r, n * out) < 1e-6);
+    }
+    fx_free_all();
+}
+
+/* A linear layer over rows that repeat each state (net_repeat.h) against the plain definition
+ * y = W x + b row by row: a shared block (state and z), a one-hot block (the action) and a
+ * per-row block, for a few states of six rows each. */
+static void test_repeated_linear(void **state)
+{
+    (void)state;
+    fx_srand(3);
+    const uint32_t rep = 6, in = 10 + rep + 5 + 4, out = 17;
+    veer__rep_cols cols = {.count = 4,
+                           .blocks = {{0, 10, VEER__REP_SHARED},
+                                      {10, rep, VEER__REP_ONEHOT},
+                                      {16, 5, VEER__REP_SHARED},
+                                      {21, 4, VEER__REP_PER_ROW}}};
+    const size_t states_of[] = {1, 3};
+    for (size_t t = 0; t < 2; t++) {
+        size_t states = states_of[t], n = states * rep;
+        float *x = fx_random(n * in, 2.0f), *w = fx_random((size_t)out * in, 1.0f);
+        float *b = fx_random(out, 1.0f);
+        for (size_t r = 0; r < n; r++) {
+            float *row = x + r * in;
+            memcpy(row, x + (r / rep) * rep * in, 10 * sizeof *row);          /* shared state ... */
+            memcpy(row + 16, x + (r / rep) * rep * in + 16, 5 * sizeof *row); /* ... and z */
+            memset(row + 10, 0, rep * sizeof *row);
+            row[10 + r % rep] = 1.0f;
+        }
+        veer__layer l = {
+            .kind = VEER__LAYER_LINEAR, .in_dim = in, .out_dim = out, .weight = w, .bias = b};
+        float *shared = fx_alloc(states * out * sizeof *shared);
+        float *y = fx_alloc(n * out * sizeof *y);
+        double *r = fx_alloc(n * out * sizeof *r);
+        veer__rep_linear(&l, &cols, n, rep, x, in, shared, y);
+        naive_linear(n, in, out, x, w, b, r);
+        assert_true(rel_err(y, r, n * out) < 1e-6);
+        /* Without the bias too. */
+        l.bias = NULL;
+        veer__rep_linear(&l, &cols, n, rep, x, in, shared, y);
+        naive_linear(n, in, out, x, w, NULL, r);
+        assert_true(rel_err(y, r, n * out) < 1e-6);
+    }
+    assert_true(veer__rep_worth(&cols, rep) && !veer__rep_worth(&cols, 1));
+    veer__rep_cols per_row = {.count = 1, .blocks = {{0, in, VEER__REP_PER_ROW}}};
+    assert_false(veer__rep_worth(&per_row, rep));
     fx_free_all();
 }
 
@@ -228,6 +299,8 @@ int main(void)
 {
     const struct CMUnitTest tests[] = {
         cmocka_unit_test(test_linear_single_and_batch),
+        cmocka_unit_test(test_linear_block),
+        cmocka_unit_test(test_repeated_linear),
         cmocka_unit_test(test_relu_tanh),
         cmocka_unit_test(test_tanh_accuracy),
         cmocka_unit_test(test_layer_norm_formula),
