@@ -146,8 +146,11 @@ static void branch_cols(const veer__branch *br, const veer__rows *rows, veer__re
     }
 }
 
+/* Evaluates branch b into its columns of bufs->branches. With skip_final, the branch's last
+ * layer is left out and *direct points at the output before it, not copied (the net's only
+ * branch with no head, see veer__net_final_linear). */
 static int eval_branch(const veer__net *net, uint32_t b, const veer__net_bufs *bufs,
-                       const veer__rows *rows, uint32_t col)
+                       const veer__rows *rows, uint32_t col, int skip_final, const float **direct)
 {
     const veer__branch *br = &net->branches[b];
     uint32_t rep = rows->state_rep ? rows->state_rep : 1;
@@ -160,7 +163,7 @@ static int eval_branch(const veer__net *net, uint32_t b, const veer__net_bufs *b
     const float *cur = bufs->in;
     uint32_t width = br->in_width;
     const veer__layer *layers = br->layers;
-    uint32_t count = br->layer_count;
+    uint32_t count = br->layer_count - (skip_final ? 1 : 0);
     veer__rep_cols cols;
     if (!once && count > 0 && layers[0].kind == VEER__LAYER_LINEAR) {
         branch_cols(br, rows, &cols);
@@ -176,6 +179,10 @@ static int eval_branch(const veer__net *net, uint32_t b, const veer__net_bufs *b
     rc = run_layers(layers, count, bufs, n, &cur, &width);
     if (rc != 0)
         return rc;
+    if (skip_final) {
+        *direct = cur;
+        return 0;
+    }
 
     size_t stride = net->branch_width;
     if (!once) {
@@ -214,12 +221,28 @@ static void merge_bilinear(const veer__net *net, const veer__net_bufs *bufs, siz
     }
 }
 
-int veer__net_eval(const veer__net *net, const veer__net_bufs *bufs, const veer__rows *rows,
-                   const float **out)
+const veer__layer *veer__net_final_linear(const veer__net *net)
 {
+    const veer__layer *last = NULL;
+    if (net->head_count > 0) {
+        last = &net->head[net->head_count - 1];
+    } else if (net->branch_count == 1 && net->merge == VEER__MERGE_CONCAT &&
+               net->branches[0].reads_action && net->branches[0].layer_count > 0) {
+        /* Reading the action, the branch runs on every row, so its output has the net's rows. */
+        last = &net->branches[0].layers[net->branches[0].layer_count - 1];
+    }
+    return last != NULL && last->kind == VEER__LAYER_LINEAR ? last : NULL;
+}
+
+/* veer__net_eval, or with skip_final everything but veer__net_final_linear(net). */
+static int eval_net(const veer__net *net, const veer__net_bufs *bufs, const veer__rows *rows,
+                    int skip_final, const float **out)
+{
+    if (skip_final && net->head_count == 0)
+        return eval_branch(net, 0, bufs, rows, 0, 1, out);
     uint32_t col = 0;
     for (uint32_t b = 0; b < net->branch_count; b++) {
-        int rc = eval_branch(net, b, bufs, rows, col);
+        int rc = eval_branch(net, b, bufs, rows, col, 0, NULL);
         if (rc != 0)
             return rc;
         col += net->branches[b].out_dim;
@@ -228,7 +251,7 @@ int veer__net_eval(const veer__net *net, const veer__net_bufs *bufs, const veer_
     const float *cur = bufs->branches;
     uint32_t width = net->branch_width;
     const veer__layer *head = net->head;
-    uint32_t count = net->head_count;
+    uint32_t count = net->head_count - (skip_final ? 1 : 0);
     uint32_t rep = rows->state_rep ? rows->state_rep : 1;
     if (net->merge == VEER__MERGE_BILINEAR) {
         merge_bilinear(net, bufs, rows->n);
@@ -257,4 +280,18 @@ int veer__net_eval(const veer__net *net, const veer__net_bufs *bufs, const veer_
         return rc;
     *out = cur;
     return 0;
+}
+
+int veer__net_eval(const veer__net *net, const veer__net_bufs *bufs, const veer__rows *rows,
+                   const float **out)
+{
+    return eval_net(net, bufs, rows, 0, out);
+}
+
+int veer__net_eval_inner(const veer__net *net, const veer__net_bufs *bufs, const veer__rows *rows,
+                         const float **out)
+{
+    if (veer__net_final_linear(net) == NULL)
+        return VEER_EINVAL;
+    return eval_net(net, bufs, rows, 1, out);
 }

@@ -125,4 +125,16 @@ void veer__net_buf_sizes(const veer__net *net, size_t rows, size_t sizes[3]);
 int veer__net_eval(const veer__net *net, const veer__net_bufs *bufs, const veer__rows *rows,
                    const float **out);
 
+/* The net's final layer when it is LINEAR and veer__net_eval_inner can stop just before it:
+ * the head's last layer, or with no head the last layer of the only branch when that branch
+ * reads the action (so runs on every row). NULL otherwise. With it, F·z = h·(Wᵀz) + b·z for
+ * the rows' inner outputs h: discrete acting projects z through W once per state instead of
+ * multiplying every action's row by W (policy.c). */
+const veer__layer *veer__net_final_linear(const veer__net *net);
+
+/* As veer__net_eval, but stops before veer__net_final_linear(net): *out is n x that layer's
+ * in_dim. Returns VEER_EINVAL when that layer is NULL. */
+int veer__net_eval_inner(const veer__net *net, const veer__net_bufs *bufs, const veer__rows *rows,
+                         const float **out);
+
 #endif

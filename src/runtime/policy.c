@@ -7,6 +7,7 @@
  * (one pass over the weights instead of action_count passes), argmax of F·z with the lowest
  * index winning ties, Q the maximum. The task vector is either one for every state (z_each 0)
  * or one per state (z_each 1, zs is m x z_dim). Nothing here allocates or locks. */
+#include <cblas.h>
 #include <math.h>
 #include <string.h>
 
@@ -32,6 +33,29 @@ static void q_values(size_t m, uint32_t per, uint32_t z_dim, const float *fo, co
     }
     for (size_t r = 0; r < m; r++)
         veer__k_row_dot(per, z_dim, fo + r * per * z_dim, z + r * z_dim, v + r * per);
+}
+
+/* As q_values when F's final layer is linear, F = W h + b: F·z = h·(Wᵀz) + b·z, with Wᵀz
+ * (h's width) once per task vector instead of W h for every action row. h is m x per rows of
+ * final->in_dim; u is scratch of final->in_dim floats. */
+static void q_values_projected(const veer__layer *final, size_t m, uint32_t per, const float *h,
+                               const float *z, int z_each, float *u, float *v)
+{
+    uint32_t k = final->in_dim, d = final->out_dim;
+    size_t groups = z_each ? m : 1, rows = z_each ? per : m * per;
+    for (size_t g = 0; g < groups; g++) {
+        const float *zg = z + (z_each ? g * d : 0);
+        cblas_sgemv(CblasRowMajor, CblasTrans, (int)d, (int)k, 1.0f, final->weight, (int)k, zg, 1,
+                    0.0f, u, 1);
+        float c = 0.0f;
+        if (final->bias != NULL)
+            c = cblas_sdot((int)d, final->bias, 1, zg, 1);
+        float *vg = v + g * rows;
+        for (size_t r = 0; r < rows; r++)
+            vg[r] = c;
+        cblas_sgemv(CblasRowMajor, CblasNoTrans, (int)rows, (int)k, 1.0f, h + g * rows * k, (int)k,
+                    u, 1, 1.0f, vg, 1);
+    }
 }
 
 /* m states of a continuous bundle. */
@@ -114,11 +138,19 @@ static int act_discrete(veer_workspace *ws, size_t m, const float *states, const
                        .z_dim = info->z_dim,
                        .z_rep = count,
                        .z_shared = !z_each};
-    const float *fo;
-    int rc = veer__net_eval(&b->forward, &ws->bufs, &rows, &fo);
-    if (rc != 0)
-        return rc;
-    q_values(m, count, info->z_dim, fo, z, z_each, ws->values);
+    const veer__layer *final = veer__net_final_linear(&b->forward);
+    int rc;
+    if (final != NULL && count > 1) {
+        const float *h;
+        if ((rc = veer__net_eval_inner(&b->forward, &ws->bufs, &rows, &h)) != 0)
+            return rc;
+        q_values_projected(final, m, count, h, z, z_each, ws->zproj, ws->values);
+    } else {
+        const float *fo;
+        if ((rc = veer__net_eval(&b->forward, &ws->bufs, &rows, &fo)) != 0)
+            return rc;
+        q_values(m, count, info->z_dim, fo, z, z_each, ws->values);
+    }
 
     for (size_t r = 0; r < m; r++) {
         const float *q = ws->values + r * count;

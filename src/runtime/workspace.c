@@ -49,9 +49,11 @@ static int workspace_build(const veer_bundle *bundle, uint32_t max_batch, int ba
             veer__net_buf_sizes(&bundle->actor, max_batch, sizes);
     }
     size_t n_actions = backward_only ? 0 : (size_t)max_batch * info->action_dim;
+    const veer__layer *final = veer__net_final_linear(&bundle->forward);
+    size_t n_zproj = backward_only || final == NULL ? 0 : final->in_dim;
     /* Every factor is capped (VEER__MAX_DIM, VEER__MAX_BATCH), so these sums cannot overflow. */
     size_t floats = lines(sizes[0]) + 2 * lines(sizes[1]) + lines(sizes[2]) + lines(n_actions) +
-                    lines(f_rows) + 2 * lines(max_batch);
+                    lines(f_rows) + lines(n_zproj) + 2 * lines(max_batch);
 
     veer_workspace *ws = veer__calloc(1, sizeof *ws);
     if (ws == NULL)
@@ -83,6 +85,8 @@ static int workspace_build(const veer_bundle *bundle, uint32_t max_batch, int ba
     p += lines(n_actions);
     ws->values = p;
     p += lines(f_rows);
+    ws->zproj = p;
+    p += lines(n_zproj);
     ws->slice_values = p;
     p += lines(max_batch);
     ws->slice_flags = (uint32_t *)p; /* same size and alignment as float */

@@ -23,6 +23,7 @@ struct veer_workspace {
                             (backward_only: max_batch rows of B alone) */
     float *actions;      /* max_batch x action_dim: the clipped policy actions */
     float *values;       /* f_rows: F·z per row */
+    float *zproj;        /* Wᵀz for F's final linear layer W (its in_dim), discrete acting */
     float *slice_values; /* max_batch: values and flags for callers that want none */
     uint32_t *slice_flags;
     void *block; /* the one allocation behind every buffer */

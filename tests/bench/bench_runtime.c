@@ -202,7 +202,8 @@ static size_t weights_bytes(const Veer__Bundle__Model *m)
 typedef struct floor_op {
     const float *w;
     int rows, in, out;
-    int ldw;     /* W's row stride: the layer's whole input width when the op is a block of it */
+    int ldw;   /* W's row stride: the layer's whole input width when the op is a block of it */
+    int trans; /* 1: y = Wᵀx, one row (x has `out` values, y `in`): F's final layer projecting z */
     int per_row; /* 1: one sgemv per row; 0: one sgemm (chosen by timing both, plan_finish) */
 } floor_op;
 
@@ -285,7 +286,10 @@ static void plan_network(floor_plan *p, const Veer__Bundle__Network *net, int ac
 
 static void floor_op_run(const floor_op *op, const float *x, float *y)
 {
-    if (op->per_row) {
+    if (op->trans) {
+        cblas_sgemv(CblasRowMajor, CblasTrans, op->out, op->in, 1.0f, op->w, op->ldw, x, 1, 0.0f, y,
+                    1);
+    } else if (op->per_row) {
         for (int r = 0; r < op->rows; r++)
             cblas_sgemv(CblasRowMajor, CblasNoTrans, op->out, op->in, 1.0f, op->w, op->ldw,
                         x + (size_t)r * op->in, 1, 0.0f, y + (size_t)r * op->out, 1);
@@ -312,7 +316,7 @@ static void plan_finish(floor_plan *p)
      * now, so that it stays the best the bare library does whatever the runtime chose. */
     for (int i = 0; i < p->n_ops; i++) {
         floor_op *op = &p->ops[i];
-        if (op->rows == 1) {
+        if (op->rows == 1 || op->trans) {
             op->per_row = 1;
             continue;
         }
@@ -349,14 +353,28 @@ static void floor_run(floor_plan *p)
 
 /* ---- act latency ------------------------------------------------------------------------ */
 
+/* 1 when the runtime reads F·z as h·(Wᵀz) (veer__net_final_linear in src/runtime/net.h): F's
+ * last layer is linear and is the head's, or F has no head and one branch that reads the
+ * action. */
+static int final_linear(const Veer__Bundle__Network *f)
+{
+    const Veer__Bundle__Layer *last = NULL;
+    if (f->n_head > 0)
+        last = f->head[f->n_head - 1];
+    else if (f->n_branches == 1 && reads_action(f->branches[0]) && f->branches[0]->n_layers > 0)
+        last = f->branches[0]->layers[f->branches[0]->n_layers - 1];
+    return last != NULL && last->kind == VEER__BUNDLE__LAYER_KIND__LAYER_LINEAR;
+}
+
 typedef struct act_bench {
     veer_workspace *ws;
     const float *states; /* a pool of states to act on */
     int pool;
     int sdim, d, adim, actions;
+    int q_width; /* d, or F's final layer's in_dim when z is projected through it */
     const float *z;
     floor_plan floor; /* F's (and the actor's) linear layers */
-    float *f_out;     /* actions x d, for the floor's Q = F z */
+    float *f_out;     /* actions x q_width, for the floor's Q = F z (or h·(Wᵀz)) */
 } act_bench;
 
 static uint64_t time_veer_act(act_bench *a, int i)
@@ -373,8 +391,8 @@ static uint64_t time_floor_act(act_bench *a)
 {
     uint64_t t0 = veer__now_ns();
     floor_run(&a->floor);
-    cblas_sgemv(CblasRowMajor, CblasNoTrans, a->actions, a->d, 1.0f, a->f_out, a->d, a->z, 1, 0.0f,
-                a->floor.y, 1);
+    cblas_sgemv(CblasRowMajor, CblasNoTrans, a->actions, a->q_width, 1.0f, a->f_out, a->q_width,
+                a->floor.x, 1, 0.0f, a->floor.y, 1);
     return veer__now_ns() - t0;
 }
 
@@ -398,13 +416,24 @@ static void bench_act(const char *label, const veer_bundle *bundle, const Veer__
     if (info->action_kind == VEER_ACTION_DISCRETE) {
         a.actions = (int)info->action_count;
         plan_network(&a.floor, m->forward, a.actions, 1, a.actions);
+        /* F ending in a linear layer W: veer computes Wᵀz once and h·(Wᵀz) per action
+         * (src/runtime/policy.c), so the floor's last op is that projection. */
+        a.q_width = a.d;
+        if (final_linear(m->forward) && a.floor.n_ops > 0) {
+            floor_op *last = &a.floor.ops[a.floor.n_ops - 1];
+            last->rows = 1;
+            last->trans = 1;
+            a.q_width = last->in;
+        }
     } else {
         a.actions = 1;
         plan_network(&a.floor, m->actor, 1, 1, 0);
         plan_network(&a.floor, m->forward, 1, 1, 0);
     }
+    if (a.q_width == 0)
+        a.q_width = a.d;
     plan_finish(&a.floor);
-    a.f_out = random_floats((size_t)a.actions * a.d);
+    a.f_out = random_floats((size_t)a.actions * a.q_width);
 
     /* Warm up both (caches, OpenBLAS's buffers, page faults), then size the rounds so each
      * side gets about 2.5 s, within [400, 20000] calls. */
