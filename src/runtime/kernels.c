@@ -6,7 +6,37 @@
 
 #include <cblas.h>
 #include <math.h>
+#include <pthread.h>
 #include <string.h>
+#include <strings.h>
+
+/* Rows up to which the linear kernels run one sgemv per row (kernels.h): fixed once per process
+ * by veer__k_init from the kernel OpenBLAS chose for this CPU, so a host always takes the same
+ * path (and the same rounding) for the same rows. */
+static size_t gemv_rows_max = VEER__K_GEMV_ROWS_MAX;
+static pthread_once_t gemv_once = PTHREAD_ONCE_INIT;
+
+static void pick_gemv_rows(void)
+{
+    /* Prescott is OpenBLAS's generic x86-64 kernel, the one it falls back to for a CPU it does
+     * not recognise (a virtual "Intel Xeon Processor" with AVX-512, December 2026): its sgemv is
+     * plain SSE while its sgemm is still blocked, and there sgemm won from two rows on for every
+     * layer of the SMALL and STANDARD models (256 x 256: 25 against 31 us for 2 rows, 41
+     * against 93 us for 6; 1024 x 1024: 476 against 528 and 727 against 1,584 us). */
+    const char *core = openblas_get_corename();
+    if (core != NULL && strcasecmp(core, "Prescott") == 0)
+        gemv_rows_max = 1;
+}
+
+void veer__k_init(void)
+{
+    pthread_once(&gemv_once, pick_gemv_rows);
+}
+
+size_t veer__k_gemv_rows_max(void)
+{
+    return gemv_rows_max;
+}
 
 void veer__k_linear(size_t n, uint32_t in, uint32_t out, const float *x, const float *w,
                     const float *b, float *y)
@@ -19,7 +49,7 @@ void veer__k_linear(size_t n, uint32_t in, uint32_t out, const float *x, const f
             memcpy(y + r * out, b, (size_t)out * sizeof *b);
         beta = 1.0f;
     }
-    if (n <= VEER__K_GEMV_ROWS_MAX) {
+    if (n <= gemv_rows_max) {
         for (size_t r = 0; r < n; r++)
             cblas_sgemv(CblasRowMajor, CblasNoTrans, (int)out, (int)in, 1.0f, w, (int)in,
                         x + r * in, 1, beta, y + r * out, 1);
@@ -34,7 +64,7 @@ void veer__k_linear_block(size_t n, uint32_t k, uint32_t out, const float *x, si
 {
     if (n == 0 || k == 0)
         return;
-    if (n <= VEER__K_GEMV_ROWS_MAX) {
+    if (n <= gemv_rows_max) {
         for (size_t r = 0; r < n; r++)
             cblas_sgemv(CblasRowMajor, CblasNoTrans, (int)out, (int)k, 1.0f, w, (int)ldw,
                         x + r * ldx, 1, 1.0f, y + r * out, 1);

@@ -16,8 +16,18 @@
  * against 8 us for 2 rows. Only narrow layers lose a little (62 x 256: 7.6 against 6.9 us for
  * 6 rows), where both cost next to nothing. OpenBLAS has a direct small-matrix sgemm only for some
  * CPUs (OpenMathLib/OpenBLAS pull request 1914). Discrete acting evaluates action_count rows per
- * state, and a batch of a few acts a few rows, so both land here. */
+ * state, and a batch of a few acts a few rows, so both land here. The crossing depends on the
+ * kernel OpenBLAS picked for the CPU: see veer__k_init. */
 #define VEER__K_GEMV_ROWS_MAX 6
+
+/* Fixes the per-row limit for this process from OpenBLAS's kernel: VEER__K_GEMV_ROWS_MAX, or 1
+ * under OpenBLAS's generic Prescott kernel, whose sgemv is slower than its sgemm from two rows
+ * on (kernels.c). Idempotent and thread-safe; workspace creation calls it, so every act path
+ * has. Before it the limit is VEER__K_GEMV_ROWS_MAX. */
+void veer__k_init(void);
+
+/* The limit in force. */
+size_t veer__k_gemv_rows_max(void);
 
 /* y = x Wᵀ + b for n rows: x is n x in, W is out x in (row-major, as PyTorch stores it),
  * b has out values or is NULL (no bias), y is n x out. x and y must not overlap. */

@@ -10,6 +10,7 @@
 #include <string.h>
 
 #include "base/base.h"
+#include "runtime/kernels.h"
 #include "runtime/workspace.h"
 #include "veer/runtime.h"
 
@@ -92,6 +93,7 @@ static int workspace_build(const veer_bundle *bundle, uint32_t max_batch, int ba
     ws->slice_flags = (uint32_t *)p; /* same size and alignment as float */
 
     openblas_set_num_threads(1);
+    veer__k_init();
     *out = ws;
     return 0;
 }

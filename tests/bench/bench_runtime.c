@@ -1,6 +1,7 @@
 /* bench_runtime: libveer's speed and memory against floors measured in the same run.
  *
- *   bench_runtime SMALL.veer STANDARD.veer      (tests/bench/run_bench_runtime.sh makes both)
+ *   bench_runtime SMALL.veer STANDARD.veer [--act-only]   (tests/bench/run_bench_runtime.sh
+ *                                                         makes both bundles)
  *
  * Prints, in one run: the OpenBLAS kernel and the CPUs the thread ran on; single-state act
  * latency p50/p99 for each bundle against the floor of the same layers as bare cblas calls;
@@ -696,8 +697,10 @@ static int make_task(const veer_bundle *bundle, float *z)
 
 int main(int argc, char **argv)
 {
-    if (argc != 3) {
-        fprintf(stderr, "usage: bench_runtime SMALL.veer STANDARD.veer\n");
+    /* --act-only: memory and act latency alone, skipping the minutes of encoding. */
+    int act_only = argc == 4 && strcmp(argv[3], "--act-only") == 0;
+    if (argc != 3 && !act_only) {
+        fprintf(stderr, "usage: bench_runtime SMALL.veer STANDARD.veer [--act-only]\n");
         return 2;
     }
     const char *paths[2] = {argv[1], argv[2]};
@@ -782,7 +785,7 @@ int main(int argc, char **argv)
     printf("\ntask encoding from reward samples (veer_task_encode with / without the R2 report, "
            "vs B's linear layers as bare sgemm; wall times):\n");
     static const int counts[2] = {5000, 50000};
-    for (int i = 0; i < 2; i++)
+    for (int i = 0; i < 2 && !act_only; i++)
         for (int c = 0; c < 2; c++)
             bench_encode(labels[i], bundles[i], files[i].model, counts[c]);
 

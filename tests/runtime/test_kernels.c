@@ -34,6 +34,7 @@ static void test_linear_single_and_batch(void **state)
 {
     (void)state;
     fx_srand(1);
+    veer__k_init(); /* the per-row limit this host's acts use; the row counts span either */
     const uint32_t in = 37, out = 19; /* odd sizes reach OpenBLAS's edge code */
     /* Row counts on both sides of the per-row sgemv / sgemm switch (kernels.h). */
     const size_t rows[] = {1, 2, VEER__K_GEMV_ROWS_MAX, VEER__K_GEMV_ROWS_MAX + 1, 9};
