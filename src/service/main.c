@@ -321,6 +321,9 @@ int main(int argc, char **argv)
     d.tick.data = &d;
     uv_timer_start(&d.tick, on_tick, TICK_MS, TICK_MS);
     veer__events_model_loaded(events, info->model_version, info->digest);
+    /* Act latency depends on the kernel OpenBLAS chose for this CPU (README, "Measured
+     * figures"), so the log names it beside the latency an operator reads. */
+    veer__log_info("blas: OpenBLAS kernel %s", veer_blas_kernel());
     veer__log_info("ready: act %s, admin %s, events %s (pid %ld)", d.cfg.act_endpoint, d.cfg.admin_endpoint,
                    d.cfg.events_endpoint, (long)getpid());
 
