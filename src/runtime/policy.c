@@ -5,8 +5,10 @@
  * actor is normalised, clip, then Q = F(s, a, z)·z for the clipped action (the value of what
  * is actually done). Discrete: F for every action of every state in one batched evaluation
  * (one pass over the weights instead of action_count passes), argmax of F·z with the lowest
- * index winning ties, Q the maximum. The task vector is either one for every state (z_each 0)
- * or one per state (z_each 1, zs is m x z_dim). Nothing here allocates or locks. */
+ * index winning ties, Q the maximum; when F ends in a linear layer W, F·z is read as
+ * h·(Wᵀz) + b·z (Wᵀz once per task vector, not W h for every action row). The task vector is
+ * either one for every state (z_each 0) or one per state (z_each 1, zs is m x z_dim). Nothing
+ * here allocates or locks. */
 #include <cblas.h>
 #include <math.h>
 #include <string.h>
