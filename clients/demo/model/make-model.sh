@@ -13,7 +13,10 @@
 # Training takes under 30 minutes on 2 shared cores (TRAIN_BUDGET_S, 1770 s by default: no chunk
 # starts that would end later); the baselines about 10 minutes more. The shipped model came from
 # this script's commands: 24,000 steps in 17 minutes on an idle core, of which the held-out
-# selection kept the 24,000-step chunk.
+# selection kept the 24,000-step chunk. It comes out byte for byte the same only under OpenBLAS's
+# Zen kernel or one that sums alike (Haswell; OPENBLAS_CORETYPE picks it on a CPU with AVX2):
+# another kernel sums in another order and trains a different model of the same recipe
+# (clients/demo/README.md, "A training run repeats exactly under one BLAS kernel").
 # The log's episode ends are time-limit cuts (the generator ends episodes by length), so the
 # trainer is told so (--ends truncated). F has the split shape (--arch split: (state, action) and
 # (state, z) embedded apart; clients/demo/README.md compares it with a single MLP). BATCH
