@@ -33,11 +33,6 @@ void veer__k_init(void)
     pthread_once(&gemv_once, pick_gemv_rows);
 }
 
-size_t veer__k_gemv_rows_max(void)
-{
-    return gemv_rows_max;
-}
-
 void veer__k_linear(size_t n, uint32_t in, uint32_t out, const float *x, const float *w,
                     const float *b, float *y)
 {

@@ -26,9 +26,6 @@
  * has. Before it the limit is VEER__K_GEMV_ROWS_MAX. */
 void veer__k_init(void);
 
-/* The limit in force. */
-size_t veer__k_gemv_rows_max(void);
-
 /* y = x Wᵀ + b for n rows: x is n x in, W is out x in (row-major, as PyTorch stores it),
  * b has out values or is NULL (no bias), y is n x out. x and y must not overlap. */
 void veer__k_linear(size_t n, uint32_t in, uint32_t out, const float *x, const float *w,

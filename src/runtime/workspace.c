@@ -50,8 +50,10 @@ static int workspace_build(const veer_bundle *bundle, uint32_t max_batch, int ba
             veer__net_buf_sizes(&bundle->actor, max_batch, sizes);
     }
     size_t n_actions = backward_only ? 0 : (size_t)max_batch * info->action_dim;
+    /* Only discrete acting projects z through F's last linear layer (policy.c). */
     const veer__layer *final = veer__net_final_linear(&bundle->forward);
-    size_t n_zproj = backward_only || final == NULL ? 0 : final->in_dim;
+    int projects = !backward_only && final != NULL && info->action_kind == VEER_ACTION_DISCRETE;
+    size_t n_zproj = projects ? final->in_dim : 0;
     /* Every factor is capped (VEER__MAX_DIM, VEER__MAX_BATCH), so these sums cannot overflow. */
     size_t floats = lines(sizes[0]) + 2 * lines(sizes[1]) + lines(sizes[2]) + lines(n_actions) +
                     lines(f_rows) + lines(n_zproj) + 2 * lines(max_batch);
