@@ -11,16 +11,19 @@
 #      samples (evaluation.md, evaluation.json).
 # Usage: clients/demo/model/make-model.sh [BUILD_DIR] [WORK_DIR]
 # Training takes under 30 minutes on 2 shared cores (TRAIN_BUDGET_S, 1770 s by default: no chunk
-# starts that would end later); the baselines about 10 minutes more. The shipped model came from
-# this script's commands: 24,000 steps in 17 minutes on an idle core, of which the held-out
-# selection kept the 24,000-step chunk. It comes out byte for byte the same only under OpenBLAS's
-# Zen kernel or one that sums alike (Haswell; OPENBLAS_CORETYPE picks it on a CPU with AVX2):
-# another kernel sums in another order and trains a different model of the same recipe
-# (clients/demo/README.md, "A training run repeats exactly under one BLAS kernel").
+# starts that would end later); the baselines a few minutes more. The shipped model is this
+# script's output, run as `OPENBLAS_CORETYPE=Zen clients/demo/model/make-model.sh build`: 24,000
+# steps in 17 minutes (1,029 s) with nothing else running, of which the held-out selection kept
+# the 18,000-step chunk. It comes out byte for byte the same only under OpenBLAS's Zen kernel or
+# one that sums alike (Haswell; OPENBLAS_CORETYPE picks it on a CPU with AVX2): another kernel
+# sums in another order and trains a different model of the same recipe (clients/demo/README.md,
+# "A training run repeats exactly under one BLAS kernel").
 # The log's episode ends are time-limit cuts (the generator ends episodes by length), so the
 # trainer is told so (--ends truncated). F has the split shape (--arch split: (state, action) and
 # (state, z) embedded apart; clients/demo/README.md compares it with a single MLP). BATCH
-# overrides the batch of 256, Z_DIM the d of 32.
+# overrides the batch of 256, Z_DIM the d of 32, KEY the training key (--rng-key) of 3: keys 1, 2
+# and 3 were trained with this recipe and the shipped model is the best held-out chunk of the
+# three (clients/demo/README.md, "How the shipped model is chosen").
 set -euo pipefail
 here="$(cd "$(dirname "$0")" && pwd)"
 root="$(cd "$here/../../.." && pwd)"
@@ -32,6 +35,7 @@ chunks="${CHUNKS:-8}"
 budget="${TRAIN_BUDGET_S:-1770}" # 29.5 minutes of training
 zdim="${Z_DIM:-32}"
 batch="${BATCH:-256}"
+key="${KEY:-3}"
 cd "$work"
 # A fresh run: a checkpoint left from an earlier run would be resumed past the first chunks.
 rm -f train.ckpt curve.csv chunk-*.veer select.txt
@@ -58,7 +62,7 @@ for i in $(seq 1 "$chunks"); do
         --states log/states.npy --actions log/actions.npy --next-states log/next_states.npy \
         --dones log/dones.npy --ends truncated --continuous -12:12,-6:6 --step 0.02 --features "$features" \
         --preset small --arch split --z-dim "$zdim" --hidden 256 --b-hidden 256 --batch "$batch" --discount 0.99 \
-        --rng-key 1 --threads 1 --eval-every 500 --checkpoint-every 1000 \
+        --rng-key "$key" --threads 1 --eval-every 500 --checkpoint-every 1000 \
         --fallback 0,0 --model-version "parcel-arm-s$steps" \
         --checkpoint train.ckpt --curve curve.csv --steps "$steps" --out "chunk-$steps.veer" --quiet
     last=$(( $(date +%s) - t0 ))
