@@ -782,12 +782,16 @@ int main(int argc, char **argv)
            "vector each, against n veer_act calls; hot, and cold after a 64 MiB sweep:\n");
     bench_batch(labels[0], bundles[0], zs[0]);
 
-    printf("\ntask encoding from reward samples (veer_task_encode with / without the R2 report, "
-           "vs B's linear layers as bare sgemm; wall times):\n");
     static const int counts[2] = {5000, 50000};
-    for (int i = 0; i < 2 && !act_only; i++)
-        for (int c = 0; c < 2; c++)
-            bench_encode(labels[i], bundles[i], files[i].model, counts[c]);
+    if (act_only) {
+        printf("\ntask encoding: skipped (--act-only)\n");
+    } else {
+        printf("\ntask encoding from reward samples (veer_task_encode with / without the R2 "
+               "report, vs B's linear layers as bare sgemm; wall times):\n");
+        for (int i = 0; i < 2; i++)
+            for (int c = 0; c < 2; c++)
+                bench_encode(labels[i], bundles[i], files[i].model, counts[c]);
+    }
 
     char cpus[256] = "";
     for (int c = 0; c < 64; c++)
