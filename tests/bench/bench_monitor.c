@@ -28,6 +28,7 @@
 #include "veer/drift.h"
 #include "veer/histogram.h"
 #include "veer/runtime.h"
+#include "splitmix.h"
 
 static uint64_t cpus_seen;
 
@@ -43,10 +44,7 @@ static uint64_t rng_state = 0x2545f4914f6cdd1dull;
 /* splitmix64, so every run draws the same inputs. */
 static uint64_t next_u64(void)
 {
-    uint64_t z = (rng_state += 0x9e3779b97f4a7c15ull);
-    z = (z ^ (z >> 30)) * 0xbf58476d1ce4e5b9ull;
-    z = (z ^ (z >> 27)) * 0x94d049bb133111ebull;
-    return z ^ (z >> 31);
+    return bench_splitmix64(&rng_state);
 }
 
 static double uniform01(void)

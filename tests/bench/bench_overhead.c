@@ -21,6 +21,7 @@
 
 #include "veer/client.h"
 #include "veer/runtime.h"
+#include "splitmix.h"
 
 #define N_STATES 4096
 #define MAX_CPUS 64
@@ -41,10 +42,7 @@ typedef struct side {
 static uint64_t rng = 0x9e3779b97f4a7c15ull;
 static double uniform01(void)
 {
-    uint64_t z = (rng += 0x9e3779b97f4a7c15ull);
-    z = (z ^ (z >> 30)) * 0xbf58476d1ce4e5b9ull;
-    z = (z ^ (z >> 27)) * 0x94d049bb133111ebull;
-    return (double)((z ^ (z >> 31)) >> 11) / 9007199254740992.0;
+    return (double)(bench_splitmix64(&rng) >> 11) / 9007199254740992.0;
 }
 
 static int cmp_u64(const void *a, const void *b)

@@ -36,6 +36,7 @@
 #include "base/base.h"
 #include "runtime/bundle_io.h"
 #include "veer/runtime.h"
+#include "splitmix.h"
 
 #define MIB (1024.0 * 1024.0)
 
@@ -79,10 +80,7 @@ static uint64_t rng_state = 0x9e3779b97f4a7c15ull;
 /* Uniform in [-1, 1): splitmix64, so every run draws the same inputs. */
 static float uniform(void)
 {
-    uint64_t z = (rng_state += 0x9e3779b97f4a7c15ull);
-    z = (z ^ (z >> 30)) * 0xbf58476d1ce4e5b9ull;
-    z = (z ^ (z >> 27)) * 0x94d049bb133111ebull;
-    z ^= z >> 31;
+    uint64_t z = bench_splitmix64(&rng_state);
     return (float)((double)(z >> 40) / (double)(1ull << 23)) - 1.0f;
 }
 

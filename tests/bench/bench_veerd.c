@@ -58,6 +58,7 @@
 #include "veer/histogram.h"
 #include "veer/runtime.h"
 #include "veer_wire.pb-c.h"
+#include "splitmix.h"
 
 #define CONTROLLERS 4
 /* A send this late means the controller itself was held off (a host stall hits client and
@@ -459,11 +460,7 @@ static int bootstrap_miss_ratio(uint64_t e[][2], uint64_t v[][2], int rounds, do
     for (int d = 0; d < BOOT_DRAWS; d++) {
         uint64_t me = 0, se = 0, mv = 0, sv = 0;
         for (int k = 0; k < rounds; k++) {
-            uint64_t z = (x += 0x9e3779b97f4a7c15ull);
-            z = (z ^ (z >> 30)) * 0xbf58476d1ce4e5b9ull;
-            z = (z ^ (z >> 27)) * 0x94d049bb133111ebull;
-            z ^= z >> 31;
-            int r = (int)(z % (uint64_t)rounds);
+            int r = (int)(bench_splitmix64(&x) % (uint64_t)rounds);
             me += e[r][0];
             se += e[r][1];
             mv += v[r][0];
